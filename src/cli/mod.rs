@@ -1,0 +1,305 @@
+//! The command line: raw arguments (clap) -> resolved settings -> one pipeline run -> exit code.
+//!
+//! The only module that prints, reads the environment or decides exit codes:
+//! 0 success, 1 catalog errors (diagnostics printed), 2 usage or internal errors.
+//! Output to a closed pipe (`plumb sql ... | head`) ends quietly.
+
+use crate::diagnostics::{self, Diagnostic, did_you_mean};
+use crate::render::Dialect;
+use crate::source::SourceMap;
+use crate::workspace::{self, Opened, Workspace};
+use clap::{Parser, Subcommand, ValueEnum};
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+
+/// Exit code: catalog errors.
+pub const EXIT_CATALOG: u8 = 1;
+/// Exit code: usage errors (bad flags, unknown experiment, missing workspace) and internal errors.
+pub const EXIT_USAGE: u8 = 2;
+
+#[derive(Debug, Parser)]
+#[command(
+    name = "plumb",
+    version,
+    about = "Metric definitions declared once in YAML, compiled to warehouse SQL, analysed as experiment readouts."
+)]
+pub struct Args {
+    /// Workspace folder (holding plumb.yaml); default: the current folder.
+    #[arg(long, global = true, value_name = "DIR")]
+    pub workspace: Option<PathBuf>,
+    /// Extra dialect folders, searched before the built-in ones.
+    #[arg(long, global = true, value_name = "DIR")]
+    pub dialects_dir: Option<PathBuf>,
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Debug, Clone, Copy, ValueEnum, PartialEq, Eq)]
+pub enum Format {
+    Table,
+    Json,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Check the workspace: load, resolve and compile every experiment.
+    Check {
+        #[arg(long, value_enum, default_value = "table")]
+        format: Format,
+    },
+    /// Print the readout SQL of an experiment.
+    Sql {
+        experiment: String,
+        /// Target dialect (default: the workspace's `dialect`).
+        #[arg(long)]
+        dialect: Option<String>,
+    },
+    /// Run an experiment's SQL on the local data and print its readout.
+    Analyze {
+        experiment: String,
+        /// Significance level for tests and 1 - confidence of intervals.
+        #[arg(long, default_value_t = 0.05)]
+        alpha: f64,
+        #[arg(long, value_enum, default_value = "table")]
+        format: Format,
+    },
+    /// Write the plant-shop demo workspace and print its main readout.
+    Demo {
+        /// Folder to write (default: ./plumb-demo).
+        #[arg(default_value = "plumb-demo")]
+        dir: PathBuf,
+        /// Seed of the data generator; the same seed gives identical files.
+        #[arg(long, default_value_t = 20_260_302)]
+        seed: u64,
+        /// Number of shoppers to generate.
+        #[arg(long, default_value_t = 100_000)]
+        shoppers: usize,
+        /// Only write the files; do not print the readout.
+        #[arg(long)]
+        no_readout: bool,
+    },
+}
+
+/// A command's failure, already carrying what to print and the exit code.
+pub enum Failure {
+    /// Catalog diagnostics (exit 1).
+    Catalog(SourceMap, Vec<Diagnostic>),
+    /// A usage or internal problem (exit 2).
+    Usage(String),
+    /// Already reported on stdout (e.g. `check --format json`); only the exit code remains.
+    Reported(u8),
+}
+
+fn usage(msg: impl Into<String>) -> Failure {
+    Failure::Usage(msg.into())
+}
+
+/// Writes to stdout; a closed pipe ends the program quietly with success.
+fn emit(text: &str) {
+    let mut out = std::io::stdout().lock();
+    if let Err(e) = out.write_all(text.as_bytes()).and_then(|_| out.flush()) {
+        if e.kind() == std::io::ErrorKind::BrokenPipe {
+            std::process::exit(0);
+        }
+        eprintln!("plumb: cannot write output: {e}");
+        std::process::exit(i32::from(EXIT_USAGE));
+    }
+}
+
+/// Entry point of the binary.
+pub fn run() -> ExitCode {
+    let args = match Args::try_parse() {
+        Ok(a) => a,
+        Err(e) => {
+            let _ = e.print();
+            return ExitCode::from(if e.use_stderr() { EXIT_USAGE } else { 0 });
+        }
+    };
+    match dispatch(&args) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(Failure::Catalog(sources, diags)) => {
+            eprint!("{}", diagnostics::render_plain(&sources, &diags));
+            let errors = diags.iter().filter(|d| d.is_error()).count();
+            eprintln!("plumb: {errors} error{} in the catalog", if errors == 1 { "" } else { "s" });
+            ExitCode::from(EXIT_CATALOG)
+        }
+        Err(Failure::Reported(code)) => ExitCode::from(code),
+        Err(Failure::Usage(msg)) => {
+            eprintln!("plumb: {msg}");
+            ExitCode::from(EXIT_USAGE)
+        }
+    }
+}
+
+fn workspace_dir(args: &Args) -> PathBuf {
+    args.workspace.clone().unwrap_or_else(|| PathBuf::from("."))
+}
+
+/// Loads and resolves the workspace, turning diagnostics into a failure.
+fn open(dir: &Path, sources: &mut SourceMap) -> Result<(Workspace, Vec<Diagnostic>), Failure> {
+    match workspace::open(dir, sources) {
+        Err(e) => Err(usage(e.to_string())),
+        Ok(Opened::Invalid(diags)) => Err(Failure::Catalog(std::mem::take(sources), diags)),
+        Ok(Opened::Ok(ws, warnings)) => Ok((*ws, warnings)),
+    }
+}
+
+fn find_experiment(ws: &Workspace, name: &str) -> Result<usize, Failure> {
+    ws.catalog.experiment(name).ok_or_else(|| {
+        let names: Vec<&str> = ws.catalog.experiments.iter().map(|e| e.name.as_str()).collect();
+        let hint = did_you_mean(name, names.iter().copied())
+            .unwrap_or_else(|| format!("experiments in this catalog: {}", names.join(", ")));
+        usage(format!("unknown experiment `{name}`; {hint}"))
+    })
+}
+
+fn load_dialect(args: &Args, name: &str) -> Result<Dialect, Failure> {
+    Dialect::load(name, args.dialects_dir.as_deref()).map_err(|e| usage(e.to_string()))
+}
+
+fn dispatch(args: &Args) -> Result<(), Failure> {
+    match &args.command {
+        Command::Check { format } => check(args, *format),
+        Command::Sql { experiment, dialect } => {
+            let mut sources = SourceMap::new();
+            let (ws, _) = open(&workspace_dir(args), &mut sources)?;
+            let id = find_experiment(&ws, experiment)?;
+            let dialect = load_dialect(args, dialect.as_deref().unwrap_or(&ws.dialect))?;
+            let (_, sql) = crate::compile_experiment(&ws.catalog, id, &dialect).map_err(|e| usage(e.to_string()))?;
+            emit(&sql);
+            Ok(())
+        }
+        Command::Analyze {
+            experiment,
+            alpha,
+            format,
+        } => {
+            if !(*alpha > 0.0 && *alpha < 1.0) {
+                return Err(usage(format!("--alpha must be between 0 and 1, got {alpha}")));
+            }
+            let text = analyze(args, &workspace_dir(args), experiment, *alpha, *format)?;
+            emit(&text);
+            Ok(())
+        }
+        Command::Demo {
+            dir,
+            seed,
+            shoppers,
+            no_readout,
+        } => {
+            let started = std::time::Instant::now();
+            let config = crate::demo::DemoConfig {
+                seed: *seed,
+                shoppers: *shoppers,
+            };
+            let summary = crate::demo::write_demo(dir, &config)
+                .map_err(|e| usage(format!("cannot write the demo into {}: {e}", dir.display())))?;
+            eprintln!(
+                "plumb: wrote the plant-shop demo to {} ({} shoppers, {} page views, {} orders, {} exposure rows) in {:.1}s",
+                dir.display(),
+                summary.shoppers,
+                summary.visits,
+                summary.orders,
+                summary.exposures,
+                started.elapsed().as_secs_f64()
+            );
+            if !no_readout {
+                let text = analyze(args, dir, crate::demo::MAIN_EXPERIMENT, 0.05, Format::Table)?;
+                emit(&text);
+                eprintln!(
+                    "plumb: next, try `plumb --workspace {} analyze care_guide_banner` (an A/A test) or `plumb --workspace {} sql {}`",
+                    dir.display(),
+                    dir.display(),
+                    crate::demo::MAIN_EXPERIMENT
+                );
+            }
+            Ok(())
+        }
+    }
+}
+
+fn check(args: &Args, format: Format) -> Result<(), Failure> {
+    let mut sources = SourceMap::new();
+    let dir = workspace_dir(args);
+    let result = workspace::open(&dir, &mut sources).map_err(|e| usage(e.to_string()))?;
+    let (ws, diags) = match result {
+        Opened::Ok(ws, d) => (Some(ws), d),
+        Opened::Invalid(d) => (None, d),
+    };
+    if format == Format::Json {
+        let json = serde_json::json!({
+            "ok": ws.is_some(),
+            "diagnostics": diagnostics::to_json(&sources, &diags),
+        });
+        emit(&(serde_json::to_string_pretty(&json).expect("json") + "\n"));
+        return match ws {
+            Some(_) => Ok(()),
+            None => Err(Failure::Reported(EXIT_CATALOG)),
+        };
+    }
+    let Some(ws) = ws else {
+        return Err(Failure::Catalog(sources, diags));
+    };
+    // Every experiment must also compile in the workspace dialect.
+    let dialect = load_dialect(args, &ws.dialect)?;
+    for id in 0..ws.catalog.experiments.len() {
+        crate::compile_experiment(&ws.catalog, id, &dialect).map_err(|e| usage(e.to_string()))?;
+    }
+    let c = &ws.catalog;
+    emit(&format!(
+        "ok: {} files, {} units, {} event tables, {} exposure logs, {} segments, {} metrics, {} experiments (dialect {})\n",
+        ws.files,
+        c.units.len(),
+        c.event_tables.len(),
+        c.exposure_logs.len(),
+        c.segments.len(),
+        c.metrics.len(),
+        c.experiments.len(),
+        ws.dialect
+    ));
+    Ok(())
+}
+
+#[cfg(not(feature = "engine"))]
+fn analyze(_: &Args, _: &Path, _: &str, _: f64, _: Format) -> Result<String, Failure> {
+    Err(usage("this plumb was built without the `engine` feature, so it cannot run SQL locally"))
+}
+
+#[cfg(feature = "engine")]
+fn analyze(args: &Args, dir: &Path, experiment: &str, alpha: f64, format: Format) -> Result<String, Failure> {
+    use crate::execute::duckdb::Engine;
+    let mut sources = SourceMap::new();
+    let (ws, _) = open(dir, &mut sources)?;
+    let id = find_experiment(&ws, experiment)?;
+    // Local execution is DuckDB, whatever the workspace's warehouse dialect.
+    let dialect = load_dialect(args, "duckdb")?;
+    let (plan, sql) = crate::compile_experiment(&ws.catalog, id, &dialect).map_err(|e| usage(e.to_string()))?;
+    let spinner = progress(&format!("running {experiment} on local DuckDB"));
+    let rows = Engine::open(ws.local_database.as_deref(), &ws.local_tables)
+        .and_then(|engine| engine.query(&sql));
+    if let Some(s) = spinner {
+        s.finish_and_clear();
+    }
+    let rows = rows.map_err(|e| usage(e.to_string()))?;
+    let table = crate::execute::stats_table(&plan, &rows).map_err(|e| usage(e.to_string()))?;
+    let spec = crate::readout_spec(&ws.catalog, id, &plan, alpha);
+    let readout = crate::stats::readout::build(&spec, &table);
+    Ok(match format {
+        Format::Table => crate::output::readout_text(&readout),
+        Format::Json => crate::output::readout_json(&readout),
+    })
+}
+
+/// A spinner on stderr while a query runs, only when stderr is a terminal.
+#[cfg(feature = "engine")]
+fn progress(msg: &str) -> Option<indicatif::ProgressBar> {
+    use std::io::IsTerminal;
+    if !std::io::stderr().is_terminal() {
+        return None;
+    }
+    let bar = indicatif::ProgressBar::new_spinner();
+    bar.set_message(msg.to_string());
+    bar.enable_steady_tick(std::time::Duration::from_millis(100));
+    Some(bar)
+}

@@ -1,0 +1,117 @@
+//! The embedded DuckDB engine: opens the workspace's local data and runs a statement.
+//!
+//! Local tables named in `plumb.yaml` (`local.tables`: name -> CSV or Parquet path) become
+//! views with the table's name, so the SQL that runs here is byte for byte the SQL a warehouse
+//! would run. A `local.database` file is attached read-only.
+
+use super::{Cell, ExecuteError, NamedRow};
+use duckdb::types::Value;
+use duckdb::{AccessMode, Config, Connection};
+use std::path::Path;
+
+/// An open local engine.
+pub struct Engine {
+    conn: Connection,
+}
+
+fn err(context: &str, e: impl std::fmt::Display) -> ExecuteError {
+    ExecuteError(format!("{context}: {e}"))
+}
+
+fn ident(name: &str) -> String {
+    format!("\"{}\"", name.replace('"', "\"\""))
+}
+
+fn literal(value: &str) -> String {
+    format!("'{}'", value.replace('\'', "''"))
+}
+
+impl Engine {
+    /// Opens DuckDB on `database` (read-only) or in memory, and maps `tables` to views.
+    pub fn open(database: Option<&Path>, tables: &[(String, std::path::PathBuf)]) -> Result<Engine, ExecuteError> {
+        let conn = match database {
+            Some(path) => {
+                let config = Config::default()
+                    .access_mode(AccessMode::ReadOnly)
+                    .map_err(|e| err("configuring DuckDB", e))?;
+                Connection::open_with_flags(path, config)
+                    .map_err(|e| err(&format!("opening {}", path.display()), e))?
+            }
+            None => Connection::open_in_memory().map_err(|e| err("starting DuckDB", e))?,
+        };
+        let engine = Engine { conn };
+        for (name, path) in tables {
+            engine.register(name, path)?;
+        }
+        Ok(engine)
+    }
+
+    /// Makes a CSV or Parquet file visible as a view named `name`.
+    pub fn register(&self, name: &str, path: &Path) -> Result<(), ExecuteError> {
+        if !path.is_file() {
+            return Err(ExecuteError(format!(
+                "local table `{name}`: file {} does not exist",
+                path.display()
+            )));
+        }
+        let p = literal(&path.to_string_lossy());
+        let reader = match path.extension().and_then(|e| e.to_str()) {
+            Some("parquet") => format!("read_parquet({p})"),
+            Some("csv") | Some("tsv") | Some("gz") => format!("read_csv({p}, header = true)"),
+            _ => {
+                return Err(ExecuteError(format!(
+                    "local table `{name}`: {} is neither .csv nor .parquet",
+                    path.display()
+                )));
+            }
+        };
+        self.conn
+            .execute_batch(&format!("CREATE OR REPLACE TEMP VIEW {} AS SELECT * FROM {reader}", ident(name)))
+            .map_err(|e| err(&format!("reading local table `{name}` from {}", path.display()), e))
+    }
+
+    /// Runs one statement and returns its rows by column name.
+    pub fn query(&self, sql: &str) -> Result<Vec<NamedRow>, ExecuteError> {
+        let mut stmt = self.conn.prepare(sql).map_err(|e| err("preparing the query", e))?;
+        let mut rows = stmt.query([]).map_err(|e| err("running the query", e))?;
+        let names: Vec<String> = rows
+            .as_ref()
+            .map(|s| s.column_names())
+            .unwrap_or_default();
+        let mut out = Vec::new();
+        while let Some(row) = rows.next().map_err(|e| err("reading the result", e))? {
+            let mut named = NamedRow::new();
+            for (i, name) in names.iter().enumerate() {
+                let v: Value = row.get(i).map_err(|e| err("reading the result", e))?;
+                named.insert(name.clone(), cell(v).map_err(|e| err(&format!("column `{name}`"), e))?);
+            }
+            out.push(named);
+        }
+        Ok(out)
+    }
+
+    /// Runs statements that return nothing (loading test data).
+    pub fn execute_batch(&self, sql: &str) -> Result<(), ExecuteError> {
+        self.conn.execute_batch(sql).map_err(|e| err("running SQL", e))
+    }
+}
+
+fn cell(v: Value) -> Result<Cell, String> {
+    Ok(match v {
+        Value::Null => Cell::Null,
+        Value::Boolean(b) => Cell::Number(f64::from(u8::from(b))),
+        Value::TinyInt(x) => Cell::Number(x.into()),
+        Value::SmallInt(x) => Cell::Number(x.into()),
+        Value::Int(x) => Cell::Number(x.into()),
+        Value::BigInt(x) => Cell::Number(x as f64),
+        Value::HugeInt(x) => Cell::Number(x as f64),
+        Value::UTinyInt(x) => Cell::Number(x.into()),
+        Value::USmallInt(x) => Cell::Number(x.into()),
+        Value::UInt(x) => Cell::Number(x.into()),
+        Value::UBigInt(x) => Cell::Number(x as f64),
+        Value::Float(x) => Cell::Number(x.into()),
+        Value::Double(x) => Cell::Number(x),
+        Value::Text(t) => Cell::Text(t),
+        other => return Err(format!("unexpected value type {other:?}")),
+    })
+}

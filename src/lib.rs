@@ -1,0 +1,88 @@
+//! plumb: metric definitions declared once, compiled to warehouse SQL, analysed as readouts.
+//!
+//! The pipeline is a chain of typed functions; tests and `plumb sql` can stop after any stage:
+//!
+//! ```text
+//!  files ──load──▶ syntax structs ──resolve──▶ ir::Catalog ──plan──▶ ExperimentPlan
+//!        (spans)                  (all errors                (dialect-free)
+//!                                  at once)
+//!  ExperimentPlan ──render(dialect)──▶ SQL ──validate──▶ SQL ──execute──▶ StatsTable
+//!  StatsTable ──stats──▶ Readout ──output──▶ table | JSON
+//! ```
+//!
+//! See DEVELOPERS.md for the stage table, the code map and the invariants each stage keeps.
+
+pub mod cli;
+pub mod demo;
+pub mod diagnostics;
+pub mod execute;
+pub mod ir;
+pub mod load;
+pub mod output;
+pub mod plan;
+pub mod render;
+pub mod resolve;
+pub mod source;
+pub mod stats;
+pub mod time;
+pub mod validate;
+pub mod workspace;
+
+use ir::{Catalog, Direction, ExperimentId};
+use plan::{ExperimentPlan, PlannedKind};
+use render::{Dialect, DialectError};
+use stats::readout::{MetricShape, MetricSpec, ReadoutSpec};
+
+/// Plans, renders and validates the readout query of one experiment.
+pub fn compile_experiment(
+    catalog: &Catalog,
+    experiment: ExperimentId,
+    dialect: &Dialect,
+) -> Result<(ExperimentPlan, String), DialectError> {
+    let plan = plan::plan_experiment(catalog, experiment);
+    let sql = dialect.render_experiment(&plan)?;
+    validate::validate(&sql, &dialect.caps.sqlparser).map_err(|e| {
+        DialectError(format!(
+            "dialect {} produced SQL that does not parse ({e}); this is a bug in the dialect's templates",
+            dialect.caps.name
+        ))
+    })?;
+    Ok((plan, sql))
+}
+
+/// What the statistics stage needs to know about an experiment.
+pub fn readout_spec(catalog: &Catalog, experiment: ExperimentId, plan: &ExperimentPlan, alpha: f64) -> ReadoutSpec {
+    let exp = &catalog.experiments[experiment];
+    ReadoutSpec {
+        experiment: exp.name.clone(),
+        control: exp.control.clone(),
+        arms: exp.arms.iter().map(|a| (a.name.clone(), a.share)).collect(),
+        metrics: plan
+            .metrics
+            .iter()
+            .map(|m| {
+                let direction = catalog.metric(&m.name).and_then(|id| catalog.metrics[id].direction);
+                MetricSpec {
+                    name: m.name.clone(),
+                    role: m.role,
+                    kind: match &m.kind {
+                        PlannedKind::Mean { column } => MetricShape::Mean {
+                            column: column.clone(),
+                        },
+                        PlannedKind::Ratio {
+                            numerator,
+                            denominator,
+                        } => MetricShape::Ratio {
+                            numerator: numerator.clone(),
+                            denominator: denominator.clone(),
+                        },
+                    },
+                    higher_is_better: direction.map(|d| d == Direction::Increase),
+                }
+            })
+            .collect(),
+        alpha,
+        start: exp.start.to_iso(),
+        end: exp.end.to_iso(),
+    }
+}

@@ -1,0 +1,235 @@
+//! Syntax structs: the catalog and workspace files exactly as written.
+//!
+//! These mirror the YAML keys one to one (the keys are a contract with users) and hold raw
+//! strings; checking names, units, windows and SQL is the resolver's job. Every field is
+//! optional here so that a missing key becomes a located "missing key" diagnostic in the
+//! resolver rather than a serde error that stops at the first problem.
+
+use serde::de::{self, Deserializer, MapAccess, Visitor};
+use serde::{Deserialize, Serialize};
+use std::fmt;
+
+/// A scalar written as a string, number or boolean, kept as its text (`14d`, `0`, `99.9%`).
+#[derive(Debug, Clone, PartialEq, Serialize)]
+#[serde(transparent)]
+pub struct Scalar(pub String);
+
+impl<'de> Deserialize<'de> for Scalar {
+    fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        struct V;
+        impl Visitor<'_> for V {
+            type Value = Scalar;
+            fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
+                f.write_str("a string or a number")
+            }
+            fn visit_str<E: de::Error>(self, v: &str) -> Result<Scalar, E> {
+                Ok(Scalar(v.to_string()))
+            }
+            fn visit_i64<E: de::Error>(self, v: i64) -> Result<Scalar, E> {
+                Ok(Scalar(v.to_string()))
+            }
+            fn visit_u64<E: de::Error>(self, v: u64) -> Result<Scalar, E> {
+                Ok(Scalar(v.to_string()))
+            }
+            fn visit_f64<E: de::Error>(self, v: f64) -> Result<Scalar, E> {
+                Ok(Scalar(v.to_string()))
+            }
+            fn visit_bool<E: de::Error>(self, v: bool) -> Result<Scalar, E> {
+                Ok(Scalar(v.to_string()))
+            }
+        }
+        d.deserialize_any(V)
+    }
+}
+
+/// A YAML mapping kept in source order (`split: {control: 50, treatment: 50}`).
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct OrderedMap<V>(pub Vec<(String, V)>);
+
+impl<'de, V: Deserialize<'de>> Deserialize<'de> for OrderedMap<V> {
+    fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        struct Mv<V>(std::marker::PhantomData<V>);
+        impl<'de, V: Deserialize<'de>> Visitor<'de> for Mv<V> {
+            type Value = OrderedMap<V>;
+            fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
+                f.write_str("a mapping")
+            }
+            fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Self::Value, A::Error> {
+                let mut out = Vec::new();
+                while let Some((k, v)) = map.next_entry::<Scalar, V>()? {
+                    out.push((k.0, v));
+                }
+                Ok(OrderedMap(out))
+            }
+        }
+        d.deserialize_map(Mv(std::marker::PhantomData))
+    }
+}
+
+/// `plumb.yaml`.
+#[derive(Debug, Clone, Default, Deserialize, Serialize)]
+pub struct WorkspaceFile {
+    pub catalog: Option<String>,
+    pub dialect: Option<String>,
+    pub local: Option<LocalData>,
+}
+
+pub const WORKSPACE_KEYS: &[&str] = &["catalog", "dialect", "local"];
+pub const LOCAL_KEYS: &[&str] = &["database", "tables"];
+
+/// `local:` in `plumb.yaml`: a DuckDB file and/or table name -> CSV/Parquet path.
+#[derive(Debug, Clone, Default, Deserialize, Serialize)]
+pub struct LocalData {
+    pub database: Option<String>,
+    pub tables: Option<OrderedMap<String>>,
+}
+
+#[derive(Debug, Clone, Deserialize, Serialize)]
+pub struct Unit {
+    pub name: Option<String>,
+    pub description: Option<String>,
+}
+
+#[derive(Debug, Clone, Deserialize, Serialize)]
+pub struct EventTable {
+    pub name: Option<String>,
+    pub description: Option<String>,
+    pub unit: Option<String>,
+    pub table: Option<String>,
+    pub sql: Option<String>,
+    pub id: Option<String>,
+    pub time: Option<String>,
+    #[serde(rename = "where")]
+    pub where_: Option<String>,
+}
+
+#[derive(Debug, Clone, Deserialize, Serialize)]
+pub struct ExposureLog {
+    pub name: Option<String>,
+    pub description: Option<String>,
+    pub unit: Option<String>,
+    pub table: Option<String>,
+    pub sql: Option<String>,
+    pub id: Option<String>,
+    pub time: Option<String>,
+    pub experiment: Option<String>,
+    pub arm: Option<String>,
+}
+
+#[derive(Debug, Clone, Deserialize, Serialize)]
+pub struct Segment {
+    pub name: Option<String>,
+    pub description: Option<String>,
+    pub unit: Option<String>,
+    pub table: Option<String>,
+    pub id: Option<String>,
+    pub value: Option<String>,
+    pub time: Option<String>,
+    pub from_exposure: Option<String>,
+}
+
+#[derive(Debug, Clone, Deserialize, Serialize)]
+pub struct Metric {
+    pub name: Option<String>,
+    pub description: Option<String>,
+    pub owner: Option<String>,
+    pub events: Option<String>,
+    pub per_unit: Option<String>,
+    pub of: Option<String>,
+    #[serde(rename = "where")]
+    pub where_: Option<String>,
+    pub window: Option<Vec<Scalar>>,
+    pub winsorize: Option<Scalar>,
+    pub at_least: Option<u64>,
+    pub ratio: Option<Vec<String>>,
+    /// `increase` or `decrease`: which way is good. Used by guardrails.
+    pub direction: Option<String>,
+}
+
+#[derive(Debug, Clone, Deserialize, Serialize)]
+pub struct Experiment {
+    pub name: Option<String>,
+    pub description: Option<String>,
+    pub exposures: Option<String>,
+    pub key: Option<Scalar>,
+    pub control: Option<String>,
+    pub split: Option<OrderedMap<f64>>,
+    pub start: Option<Scalar>,
+    pub end: Option<Scalar>,
+    pub primary: Option<Vec<String>>,
+    pub secondary: Option<Vec<String>>,
+    pub guardrails: Option<Vec<String>>,
+    pub covariate_window: Option<Scalar>,
+    pub segments: Option<Vec<String>>,
+}
+
+/// The top-level lists a catalog file may hold, with the keys each item accepts.
+pub const KINDS: &[(&str, &[&str])] = &[
+    ("units", &["name", "description"]),
+    (
+        "event_tables",
+        &["name", "description", "unit", "table", "sql", "id", "time", "where"],
+    ),
+    (
+        "exposure_logs",
+        &[
+            "name",
+            "description",
+            "unit",
+            "table",
+            "sql",
+            "id",
+            "time",
+            "experiment",
+            "arm",
+        ],
+    ),
+    (
+        "segments",
+        &[
+            "name",
+            "description",
+            "unit",
+            "table",
+            "id",
+            "value",
+            "time",
+            "from_exposure",
+        ],
+    ),
+    (
+        "metrics",
+        &[
+            "name",
+            "description",
+            "owner",
+            "events",
+            "per_unit",
+            "of",
+            "where",
+            "window",
+            "winsorize",
+            "at_least",
+            "ratio",
+            "direction",
+        ],
+    ),
+    (
+        "experiments",
+        &[
+            "name",
+            "description",
+            "exposures",
+            "key",
+            "control",
+            "split",
+            "start",
+            "end",
+            "primary",
+            "secondary",
+            "guardrails",
+            "covariate_window",
+            "segments",
+        ],
+    ),
+];
