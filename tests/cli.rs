@@ -1,0 +1,149 @@
+//! Command-line tests: the `plumb` binary run in a temporary workspace per test.
+//! Rendered diagnostics and SQL are snapshotted (`cargo insta review` to update).
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+fn fixtures() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures")
+}
+
+/// A temporary workspace holding `base.yaml` plus the given catalog files.
+fn workspace(files: &[(&str, &str)]) -> tempfile::TempDir {
+    let dir = tempfile::tempdir().unwrap();
+    std::fs::create_dir_all(dir.path().join("metrics")).unwrap();
+    std::fs::write(dir.path().join("plumb.yaml"), "catalog: metrics\ndialect: duckdb\n").unwrap();
+    std::fs::copy(fixtures().join("base.yaml"), dir.path().join("metrics/base.yaml")).unwrap();
+    for (name, text) in files {
+        std::fs::write(dir.path().join("metrics").join(name), text).unwrap();
+    }
+    dir
+}
+
+fn plumb(dir: &Path, args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .current_dir(dir)
+        .args(["--workspace", "."])
+        .args(args)
+        .output()
+        .unwrap()
+}
+
+fn text(bytes: &[u8]) -> String {
+    String::from_utf8_lossy(bytes).into_owned()
+}
+
+#[test]
+fn check_errors_are_located_and_snapshotted() {
+    insta::glob!("fixtures/err_*.yaml", |path| {
+        let name = path.file_name().unwrap().to_str().unwrap();
+        let body = std::fs::read_to_string(path).unwrap();
+        let ws = workspace(&[(name, &body)]);
+        let out = plumb(ws.path(), &["check"]);
+        assert_eq!(out.status.code(), Some(1), "catalog errors exit with 1");
+        assert!(out.stdout.is_empty(), "diagnostics go to stderr");
+        let stderr = text(&out.stderr);
+        assert!(stderr.contains(&format!("metrics/{name}:")), "file:line:col shown:\n{stderr}");
+        insta::assert_snapshot!(stderr);
+    });
+}
+
+#[test]
+fn check_reports_every_error_at_once_with_hints() {
+    let body = std::fs::read_to_string(fixtures().join("err_duplicates_and_values.yaml")).unwrap();
+    let ws = workspace(&[("bad.yaml", &body)]);
+    let stderr = text(&plumb(ws.path(), &["check"]).stderr);
+    for expected in [
+        "duplicate metric name `orders`",
+        "not snake_case",
+        "unknown per_unit `cnt`",
+        "bad window bound",
+        "the window ends before it starts",
+        "needs `of`",
+        "invalid SQL in `where`",
+        "control arm `ctrl` is not in `split`",
+        "the experiment ends before it starts",
+    ] {
+        assert!(stderr.contains(expected), "missing `{expected}` in:\n{stderr}");
+    }
+    assert!(stderr.contains("metrics/bad.yaml:5:11"), "duplicate located at line 5:\n{stderr}");
+}
+
+#[test]
+fn check_json_lists_diagnostics_with_positions() {
+    let body = std::fs::read_to_string(fixtures().join("err_unknown_keys.yaml")).unwrap();
+    let ws = workspace(&[("bad.yaml", &body)]);
+    let out = plumb(ws.path(), &["check", "--format", "json"]);
+    assert_eq!(out.status.code(), Some(1));
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(v["ok"], false);
+    let first = &v["diagnostics"][0];
+    assert_eq!(first["code"], "E003");
+    assert_eq!(first["line"], 4);
+    assert_eq!(first["column"], 5);
+    assert_eq!(first["hints"][0], "did you mean `per_unit`?");
+}
+
+#[test]
+fn check_ok_prints_one_line_summary() {
+    let body = std::fs::read_to_string(fixtures().join("ok_minimal.yaml")).unwrap();
+    let ws = workspace(&[("ok.yaml", &body)]);
+    let out = plumb(ws.path(), &["check"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    insta::assert_snapshot!(text(&out.stdout), @"ok: 2 files, 2 units, 2 event tables, 1 exposure logs, 0 segments, 3 metrics, 1 experiments (dialect duckdb)\n");
+}
+
+#[test]
+fn usage_errors_exit_with_2() {
+    let empty = tempfile::tempdir().unwrap();
+    let out = plumb(empty.path(), &["check"]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(text(&out.stderr).contains("no plumb.yaml"));
+
+    let body = std::fs::read_to_string(fixtures().join("ok_minimal.yaml")).unwrap();
+    let ws = workspace(&[("ok.yaml", &body)]);
+    let out = plumb(ws.path(), &["sql", "chekout"]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(text(&out.stderr).contains("did you mean `checkout`?"), "{}", text(&out.stderr));
+
+    let out = plumb(ws.path(), &["sql", "checkout", "--dialect", "nosuch"]);
+    assert_eq!(out.status.code(), Some(2));
+    let out = plumb(ws.path(), &["analyze", "checkout", "--alpha", "2"]);
+    assert_eq!(out.status.code(), Some(2));
+    let out = plumb(ws.path(), &["frobnicate"]);
+    assert_eq!(out.status.code(), Some(2));
+}
+
+#[test]
+fn sql_of_the_demo_catalog_is_stable_and_parses_as_duckdb() {
+    let dir = tempfile::tempdir().unwrap();
+    std::fs::create_dir_all(dir.path().join("metrics")).unwrap();
+    std::fs::write(dir.path().join("plumb.yaml"), "catalog: metrics\n").unwrap();
+    for (name, text) in plumb::demo::CATALOG {
+        std::fs::write(dir.path().join("metrics").join(name), text).unwrap();
+    }
+    let out = plumb(dir.path(), &["sql", "one_page_checkout"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let sql = text(&out.stdout);
+    plumb::validate::validate(&sql, "duckdb").unwrap();
+    // Deterministic: a second run gives byte-identical SQL.
+    assert_eq!(text(&plumb(dir.path(), &["sql", "one_page_checkout"]).stdout), sql);
+    insta::assert_snapshot!("demo_one_page_checkout_duckdb", sql);
+    let generic = text(&plumb(dir.path(), &["sql", "one_page_checkout", "--dialect", "generic"]).stdout);
+    plumb::validate::validate(&generic, "generic").unwrap();
+    insta::assert_snapshot!("demo_one_page_checkout_generic", generic);
+}
+
+#[test]
+fn user_dialect_folder_overrides_without_recompiling() {
+    let body = std::fs::read_to_string(fixtures().join("ok_minimal.yaml")).unwrap();
+    let ws = workspace(&[("ok.yaml", &body)]);
+    let dialects = ws.path().join("my-dialects/shouty");
+    std::fs::create_dir_all(&dialects).unwrap();
+    std::fs::write(dialects.join("dialect.yaml"), "float_type: FLOAT8\nfilter_clause: true\n").unwrap();
+    let out = plumb(ws.path(), &["--dialects-dir", "my-dialects", "sql", "checkout", "--dialect", "shouty"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let sql = text(&out.stdout);
+    assert!(sql.contains("AS FLOAT8)"), "{sql}");
+    assert!(sql.contains("FILTER (WHERE"), "{sql}");
+}

@@ -1,0 +1,152 @@
+//! End to end on real DuckDB: catalog -> SQL -> DuckDB -> statistics table -> readout.
+//!
+//! The hand-made dataset in `tests/data/handmade/` is small enough that every per-unit value
+//! is worked out by hand below (see the comments); the test recomputes means and variances
+//! from those values in plain Rust and compares them with what the compiled SQL returned.
+#![cfg(feature = "engine")]
+
+use plumb::execute::duckdb::Engine;
+use plumb::source::SourceMap;
+use plumb::stats::Moments;
+use std::path::Path;
+
+fn handmade_workspace() -> tempfile::TempDir {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let dir = tempfile::tempdir().unwrap();
+    std::fs::create_dir_all(dir.path().join("metrics")).unwrap();
+    std::fs::copy(root.join("tests/fixtures/handmade.yaml"), dir.path().join("metrics/handmade.yaml")).unwrap();
+    let data = root.join("tests/data/handmade");
+    std::fs::write(
+        dir.path().join("plumb.yaml"),
+        format!(
+            "catalog: metrics\nlocal:\n  tables:\n    orders: {}\n    assignments: {}\n",
+            data.join("orders.csv").display(),
+            data.join("assignments.csv").display()
+        ),
+    )
+    .unwrap();
+    dir
+}
+
+/// Per-unit values worked out by hand from the CSV files (experiment 2026-01-10 .. 01-20):
+/// - u1 (control, first exposure 01-10 10:00): paid orders at 01-10 11:00 (10) and 01-15 (20)
+///   count; 01-09 is before exposure, 01-20 00:00 is exactly at the cut-off (excluded), the
+///   refund is not paid. Within 7 days (until 01-17 10:00): both.
+/// - u2 (control, 01-11 00:00): 01-11 00:00 counts (at exposure), 01-18 23:00 counts for the
+///   full window but not for the 7-day one (ends 01-18 00:00). Revenue 7 + 3.
+/// - u3 (control): no events -> zeros, still counted.
+/// - u4 (treatment, 01-10 12:00): 13:00 (30), 01-11 (30), 01-19 (40); the 500 is a test order
+///   removed by the event table's `where`. 7-day window ends 01-17 12:00: two orders.
+/// - u5 (treatment): only a refund -> zeros. u6 (treatment, 01-13): its order is before exposure.
+/// - u7 was exposed to both arms (excluded and counted), u8 before the start, u9 to another
+///   experiment (neither is a unit of this experiment), u10 to an arm not in the split.
+const CONTROL: [[f64; 4]; 3] = [
+    // orders, revenue, bought, week_orders
+    [2.0, 30.0, 1.0, 2.0],
+    [2.0, 10.0, 1.0, 1.0],
+    [0.0, 0.0, 0.0, 0.0],
+];
+const TREATMENT: [[f64; 4]; 3] = [[3.0, 100.0, 1.0, 2.0], [0.0, 0.0, 0.0, 0.0], [0.0, 0.0, 0.0, 0.0]];
+
+fn moments(rows: &[[f64; 4]], col: usize) -> (f64, f64) {
+    let n = rows.len() as f64;
+    let mean = rows.iter().map(|r| r[col]).sum::<f64>() / n;
+    let var = rows.iter().map(|r| (r[col] - mean).powi(2)).sum::<f64>() / (n - 1.0);
+    (mean, var)
+}
+
+fn cov(rows: &[[f64; 4]], a: usize, b: usize) -> f64 {
+    let (ma, _) = moments(rows, a);
+    let (mb, _) = moments(rows, b);
+    rows.iter().map(|r| (r[a] - ma) * (r[b] - mb)).sum::<f64>() / (rows.len() as f64 - 1.0)
+}
+
+#[test]
+fn handmade_dataset_matches_hand_computation() {
+    let ws_dir = handmade_workspace();
+    let mut sources = SourceMap::new();
+    let ws = match plumb::workspace::open(ws_dir.path(), &mut sources).unwrap() {
+        plumb::workspace::Opened::Ok(ws, _) => ws,
+        plumb::workspace::Opened::Invalid(d) => panic!("{}", plumb::diagnostics::render_plain(&sources, &d)),
+    };
+    let dialect = plumb::render::Dialect::load("duckdb", None).unwrap();
+    let id = ws.catalog.experiment("exp").unwrap();
+    let (plan, sql) = plumb::compile_experiment(&ws.catalog, id, &dialect).unwrap();
+    let engine = Engine::open(None, &ws.local_tables).unwrap();
+    let rows = engine.query(&sql).unwrap();
+    let table = plumb::execute::stats_table(&plan, &rows).unwrap();
+
+    assert_eq!(table.excluded_multiple_arms, 1, "u7 is in two arms");
+    let arms: Vec<(&str, u64)> = table.rows.iter().map(|r| (r.arm.as_str(), r.units)).collect();
+    assert_eq!(arms, vec![("control", 3), ("holdout", 1), ("treatment", 3)]);
+
+    for (arm, expected) in [("control", &CONTROL), ("treatment", &TREATMENT)] {
+        let row = table.rows.iter().find(|r| r.arm == arm).unwrap();
+        for (col, name) in ["orders", "revenue", "bought", "week_orders"].iter().enumerate() {
+            let (mean, var) = moments(expected.as_slice(), col);
+            let got: &Moments = &row.columns[*name];
+            assert_eq!(got.n, 3, "{arm} {name}: zero-event units are counted");
+            assert!((got.mean - mean).abs() < 1e-12, "{arm} {name} mean {} vs {mean}", got.mean);
+            assert!((got.var - var).abs() < 1e-9, "{arm} {name} var {} vs {var}", got.var);
+        }
+        let c = row.covariances["avg_basket"];
+        assert!((c - cov(expected.as_slice(), 1, 0)).abs() < 1e-9, "{arm} cov {c}");
+    }
+
+    // The readout: the holdout arm is excluded as an unknown arm and reported.
+    let spec = plumb::readout_spec(&ws.catalog, id, &plan, 0.05);
+    let readout = plumb::stats::readout::build(&spec, &table);
+    assert_eq!(readout.excluded.multiple_arms, 1);
+    assert_eq!(readout.excluded.unknown_arm, 1);
+    assert!(readout.cautions.iter().any(|c| c.contains("more than one arm")));
+    let orders = readout.results.iter().find(|r| r.metric == "orders").unwrap();
+    assert_eq!(orders.control.n, 3);
+    let d = orders.difference.as_ref().unwrap();
+    assert!((d.estimate - (1.0 - 4.0 / 3.0)).abs() < 1e-12);
+}
+
+#[test]
+fn demo_readout_shows_the_injected_effect_and_a_clean_aa_test() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .args(["demo", "--no-readout", "--shoppers", "40000"])
+        .arg(dir.path())
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let run = |exp: &str| -> serde_json::Value {
+        let out = std::process::Command::new(env!("CARGO_BIN_EXE_plumb"))
+            .arg("--workspace")
+            .arg(dir.path())
+            .args(["analyze", exp, "--format", "json"])
+            .output()
+            .unwrap();
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        serde_json::from_slice(&out.stdout).unwrap()
+    };
+    let main = run("one_page_checkout");
+    // The stable keys of the JSON document.
+    for key in ["experiment", "control", "arms", "excluded", "sample_ratio", "results"] {
+        assert!(main.get(key).is_some(), "missing key {key}");
+    }
+    assert_eq!(main["experiment"], "one_page_checkout");
+    assert_eq!(main["sample_ratio"]["mismatch"], false);
+    assert!(main["excluded"]["multiple_arms"].as_u64().unwrap() > 0, "the demo injects units in two arms");
+    let row = |doc: &serde_json::Value, metric: &str| -> serde_json::Value {
+        doc["results"].as_array().unwrap().iter().find(|r| r["metric"] == metric).unwrap().clone()
+    };
+    let orders = row(&main, "orders");
+    for key in ["metric", "role", "arm", "segment", "control", "treatment", "difference", "relative"] {
+        assert!(orders.get(key).is_some(), "result row missing {key}");
+    }
+    assert_eq!(orders["role"], "primary");
+    assert!(orders["difference"]["estimate"].as_f64().unwrap() > 0.0);
+    assert!(orders["difference"]["p_value"].as_f64().unwrap() < 0.05, "{orders}");
+
+    let aa = run("care_guide_banner");
+    assert_eq!(aa["sample_ratio"]["mismatch"], false);
+    for r in aa["results"].as_array().unwrap() {
+        let p = r["difference"]["p_value"].as_f64().unwrap();
+        assert!(p > 0.01, "A/A test row {} has p = {p}", r["metric"]);
+    }
+}

@@ -1,0 +1,146 @@
+//! The statistics checked against published values (and, where no published example exists,
+//! against derived values computed two independent ways). Each check names its source.
+//! Reference data files are copies of the workplace's shared reference data.
+
+use plumb::stats::{self, Moments, RatioMoments};
+
+fn read_csv(name: &str) -> (Vec<String>, Vec<Vec<String>>) {
+    let path = format!("{}/tests/data/reference/{name}", env!("CARGO_MANIFEST_DIR"));
+    let text = std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("{path}: {e}"));
+    let mut lines = text.lines();
+    let header = lines.next().unwrap().split(',').map(str::to_string).collect();
+    let rows = lines
+        .filter(|l| !l.trim().is_empty())
+        .map(|l| l.split(',').map(str::to_string).collect())
+        .collect();
+    (header, rows)
+}
+
+fn column(name: &str) -> Vec<f64> {
+    let (_, rows) = read_csv(name);
+    rows.iter().map(|r| r[0].parse().unwrap()).collect()
+}
+
+fn assert_close(got: f64, want: f64, tol: f64, what: &str) {
+    assert!((got - want).abs() <= tol, "{what}: got {got}, want {want} ± {tol}");
+}
+
+fn assert_rel(got: f64, want: f64, rel: f64, what: &str) {
+    assert!(
+        ((got - want) / want).abs() <= rel,
+        "{what}: got {got:.15e}, want {want:.15e} (relative tolerance {rel})"
+    );
+}
+
+/// NIST StRD, Univariate Summary Statistics: certified mean and sample standard deviation.
+/// A one-pass sum-of-squares variance fails NumAcc3/NumAcc4; the two-pass one must not.
+#[test]
+fn nist_strd_univariate_mean_and_sd() {
+    // (file, certified mean, certified sd, relative tolerance): 1e-9 / 1e-8 on NumAcc3/4
+    // because f64 inputs cap the achievable accuracy there (shared REFERENCES.md).
+    let cases = [
+        ("nist_strd_lew.csv", -177.435, 277.332168044316, 1e-12),
+        ("nist_strd_lottery.csv", 518.958715596330, 291.699727470969, 1e-12),
+        ("nist_strd_mavro.csv", 2.00185600000000, 0.000429123454003053, 1e-9),
+        ("nist_strd_michelso.csv", 299.852400000000, 0.0790105478190518, 1e-9),
+        ("nist_strd_numacc1.csv", 10000002.0, 1.0, 1e-12),
+        ("nist_strd_numacc2.csv", 1.2, 0.1, 1e-12),
+        ("nist_strd_numacc3.csv", 1000000.2, 0.1, 1e-9),
+        ("nist_strd_numacc4.csv", 10000000.2, 0.1, 1e-8),
+        ("nist_strd_pidigits.csv", 4.5348, 2.86733906028871, 1e-12),
+    ];
+    for (file, mean, sd, tol) in cases {
+        let m = Moments::from_values(&column(file));
+        assert_rel(m.mean, mean, 1e-14, &format!("{file} mean"));
+        assert_rel(m.sd(), sd, tol, &format!("{file} sd"));
+    }
+}
+
+fn sleep_groups() -> (Moments, Moments) {
+    let (_, rows) = read_csv("r_sleep.csv");
+    let values = |g: &str| -> Vec<f64> {
+        rows.iter().filter(|r| r[0] == g).map(|r| r[1].parse().unwrap()).collect()
+    };
+    (Moments::from_values(&values("1")), Moments::from_values(&values("2")))
+}
+
+/// R `t.test(extra ~ group, data = sleep)` (Student 1908 data): t = -1.8608, df = 17.776,
+/// p = 0.07939, 95% CI of mean1 - mean2 = (-3.3654832, 0.2054832), means 0.75 and 2.33.
+/// plumb reports treatment - control, so group 1 plays treatment and group 2 control.
+#[test]
+fn welch_matches_r_sleep_example() {
+    let (g1, g2) = sleep_groups();
+    assert_close(g1.mean, 0.75, 5e-3, "mean of group 1");
+    assert_close(g2.mean, 2.33, 5e-3, "mean of group 2");
+    let e = stats::welch(&g2, &g1, 0.05).unwrap();
+    assert_close(e.estimate / e.se, -1.8608, 5e-5, "t");
+    assert_close(e.df, 17.776, 5e-4, "df");
+    assert_close(e.p_value.unwrap(), 0.07939, 5e-6, "p");
+    assert_close(e.ci_low, -3.3654832, 5e-8, "ci low");
+    assert_close(e.ci_high, 0.2054832, 5e-8, "ci high");
+}
+
+/// Relative difference by the delta method (Deng, Knoblich & Lu 2018): derived, no published
+/// example. Var(Ȳt/Ȳc) ≈ Var(Ȳt)/Ȳc² + Ȳt²·Var(Ȳc)/Ȳc⁴, computed here by hand on the sleep data.
+#[test]
+fn relative_difference_delta_method_derived() {
+    let (g1, g2) = sleep_groups();
+    let e = stats::relative(&g2, &g1, 0.05).unwrap();
+    let (mt, mc) = (g1.mean, g2.mean);
+    let var = (g1.var / 10.0) / (mc * mc) + mt * mt * (g2.var / 10.0) / mc.powi(4);
+    assert_close(e.estimate, mt / mc - 1.0, 1e-15, "relative estimate");
+    assert_close(e.se, var.sqrt(), 1e-15, "relative se");
+    let z = 1.959963984540054; // standard normal 0.975 quantile (well known)
+    assert_close(e.ci_low, e.estimate - z * e.se, 1e-12, "relative ci");
+}
+
+/// Sample-ratio mismatch: 600 vs 400 with a 50/50 design gives chi-square 40,
+/// p = 2.54e-10 (Wikipedia, "Sample ratio mismatch", Example).
+#[test]
+fn srm_matches_wikipedia_example() {
+    let s = stats::sample_ratio(&[600, 400], &[50.0, 50.0]).unwrap();
+    assert_close(s.chi_square, 40.0, 1e-12, "chi-square");
+    assert_rel(s.p_value, 2.54e-10, 0.002, "p");
+    assert!(s.mismatch);
+}
+
+/// Goodness of fit with four categories: Mendel's peas 315/108/101/32 against 9:3:3:1,
+/// X² = 0.47002, df = 3, p = 0.9254 (R `chisq.test(x, p = c(9,3,3,1)/16)`).
+#[test]
+fn goodness_of_fit_matches_r_mendel_example() {
+    let s = stats::sample_ratio(&[315, 108, 101, 32], &[9.0, 3.0, 3.0, 1.0]).unwrap();
+    assert_close(s.chi_square, 0.47002, 5e-6, "X²");
+    assert_eq!(s.df, 3);
+    assert_close(s.p_value, 0.9254, 5e-5, "p");
+    assert!(!s.mismatch);
+}
+
+fn ratio_arm(rows: &[Vec<String>], arm: &str) -> RatioMoments {
+    let pick = |i: usize| -> Vec<f64> {
+        rows.iter().filter(|r| r[0] == arm).map(|r| r[i].parse().unwrap()).collect()
+    };
+    let (x, y) = (pick(2), pick(3));
+    let (mx, my) = (Moments::from_values(&x), Moments::from_values(&y));
+    let cov = x.iter().zip(&y).map(|(a, b)| (a - mx.mean) * (b - my.mean)).sum::<f64>() / (x.len() as f64 - 1.0);
+    RatioMoments { numerator: mx, denominator: my, cov }
+}
+
+/// Delta method for ratio metrics (Deng, Knoblich & Lu 2018, KDD): derived values from
+/// shared REFERENCES.md (closed form and a statistics library agree): R_c = 1.5,
+/// Var(R_c) = 0.0206611570; R_t = 1.7916666667, Var(R_t) = 0.0146819273; difference
+/// 0.2916666667 (SE 0.1879975647); relative 0.1944444444 (SE 0.1400938559).
+#[test]
+fn ratio_metric_delta_method_derived() {
+    let (_, rows) = read_csv("derived_ratio_metric.csv");
+    let (c, t) = (ratio_arm(&rows, "control"), ratio_arm(&rows, "treatment"));
+    assert_close(c.ratio(), 1.5, 5e-11, "R_c");
+    assert_close(c.var_of_ratio(), 0.0206611570, 5e-11, "Var(R_c)");
+    assert_close(t.ratio(), 1.7916666667, 5e-11, "R_t");
+    assert_close(t.var_of_ratio(), 0.0146819273, 5e-11, "Var(R_t)");
+    let d = stats::ratio_difference(&c, &t, 0.05).unwrap();
+    assert_close(d.estimate, 0.2916666667, 5e-11, "difference");
+    assert_close(d.se, 0.1879975647, 5e-11, "difference SE");
+    let r = stats::ratio_relative(&c, &t, 0.05).unwrap();
+    assert_close(r.estimate, 0.1944444444, 5e-11, "relative");
+    assert_close(r.se, 0.1400938559, 5e-11, "relative SE");
+}
