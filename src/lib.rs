@@ -51,7 +51,12 @@ pub fn compile_experiment(
 }
 
 /// What the statistics stage needs to know about an experiment.
-pub fn readout_spec(catalog: &Catalog, experiment: ExperimentId, plan: &ExperimentPlan, alpha: f64) -> ReadoutSpec {
+pub fn readout_spec(
+    catalog: &Catalog,
+    experiment: ExperimentId,
+    plan: &ExperimentPlan,
+    alpha: f64,
+) -> ReadoutSpec {
     let exp = &catalog.experiments[experiment];
     ReadoutSpec {
         experiment: exp.name.clone(),
@@ -61,7 +66,9 @@ pub fn readout_spec(catalog: &Catalog, experiment: ExperimentId, plan: &Experime
             .metrics
             .iter()
             .map(|m| {
-                let direction = catalog.metric(&m.name).and_then(|id| catalog.metrics[id].direction);
+                let direction = catalog
+                    .metric(&m.name)
+                    .and_then(|id| catalog.metrics[id].direction);
                 MetricSpec {
                     name: m.name.clone(),
                     role: m.role,

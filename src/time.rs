@@ -48,9 +48,8 @@ impl Timestamp {
     /// optional `Z` or `±HH:MM` offset. Fractions of a second are not accepted: experiment
     /// boundaries are whole seconds.
     pub fn parse(text: &str) -> Result<Timestamp, String> {
-        let bad = || {
-            format!("`{text}` is not a timestamp; write it as 2026-03-02T00:00:00Z (UTC) or 2026-03-02")
-        };
+        let bad =
+            || format!("`{text}` is not a timestamp; write it as 2026-03-02T00:00:00Z (UTC) or 2026-03-02");
         let s = text.trim();
         let num = |part: &str| -> Result<i64, String> {
             if part.is_empty() || !part.bytes().all(|b| b.is_ascii_digit()) {
@@ -128,7 +127,8 @@ impl Timestamp {
 /// Parses a duration such as `14d`, `36h`, `-7d` or `0` into seconds.
 pub fn parse_duration(text: &str) -> Result<i64, String> {
     let s = text.trim();
-    let bad = || format!("`{text}` is not a duration; write a whole number of days or hours, e.g. `14d` or `36h`");
+    let bad =
+        || format!("`{text}` is not a duration; write a whole number of days or hours, e.g. `14d` or `36h`");
     if s == "0" {
         return Ok(0);
     }
@@ -167,7 +167,10 @@ mod tests {
             t,
             "offsets convert to UTC"
         );
-        assert_eq!(Timestamp::parse("2024-02-29 12:00").unwrap().to_iso(), "2024-02-29T12:00:00Z");
+        assert_eq!(
+            Timestamp::parse("2024-02-29 12:00").unwrap().to_iso(),
+            "2024-02-29T12:00:00Z"
+        );
         assert!(Timestamp::parse("2025-02-29").is_err());
         assert!(Timestamp::parse("yesterday").is_err());
         assert_eq!(Timestamp(-1).to_sql_string(), "1969-12-31 23:59:59");

@@ -12,7 +12,11 @@ fn fixtures() -> PathBuf {
 fn workspace(files: &[(&str, &str)]) -> tempfile::TempDir {
     let dir = tempfile::tempdir().unwrap();
     std::fs::create_dir_all(dir.path().join("metrics")).unwrap();
-    std::fs::write(dir.path().join("plumb.yaml"), "catalog: metrics\ndialect: duckdb\n").unwrap();
+    std::fs::write(
+        dir.path().join("plumb.yaml"),
+        "catalog: metrics\ndialect: duckdb\n",
+    )
+    .unwrap();
     std::fs::copy(fixtures().join("base.yaml"), dir.path().join("metrics/base.yaml")).unwrap();
     for (name, text) in files {
         std::fs::write(dir.path().join("metrics").join(name), text).unwrap();
@@ -43,7 +47,10 @@ fn check_errors_are_located_and_snapshotted() {
         assert_eq!(out.status.code(), Some(1), "catalog errors exit with 1");
         assert!(out.stdout.is_empty(), "diagnostics go to stderr");
         let stderr = text(&out.stderr);
-        assert!(stderr.contains(&format!("metrics/{name}:")), "file:line:col shown:\n{stderr}");
+        assert!(
+            stderr.contains(&format!("metrics/{name}:")),
+            "file:line:col shown:\n{stderr}"
+        );
         insta::assert_snapshot!(stderr);
     });
 }
@@ -66,7 +73,10 @@ fn check_reports_every_error_at_once_with_hints() {
     ] {
         assert!(stderr.contains(expected), "missing `{expected}` in:\n{stderr}");
     }
-    assert!(stderr.contains("metrics/bad.yaml:5:11"), "duplicate located at line 5:\n{stderr}");
+    assert!(
+        stderr.contains("metrics/bad.yaml:5:11"),
+        "duplicate located at line 5:\n{stderr}"
+    );
 }
 
 #[test]
@@ -104,7 +114,11 @@ fn usage_errors_exit_with_2() {
     let ws = workspace(&[("ok.yaml", &body)]);
     let out = plumb(ws.path(), &["sql", "chekout"]);
     assert_eq!(out.status.code(), Some(2));
-    assert!(text(&out.stderr).contains("did you mean `checkout`?"), "{}", text(&out.stderr));
+    assert!(
+        text(&out.stderr).contains("did you mean `checkout`?"),
+        "{}",
+        text(&out.stderr)
+    );
 
     let out = plumb(ws.path(), &["sql", "checkout", "--dialect", "nosuch"]);
     assert_eq!(out.status.code(), Some(2));
@@ -127,7 +141,10 @@ fn sql_of_the_demo_catalog_is_stable_and_parses_as_duckdb() {
     let sql = text(&out.stdout);
     plumb::validate::validate(&sql, "duckdb").unwrap();
     // Deterministic: a second run gives byte-identical SQL.
-    assert_eq!(text(&plumb(dir.path(), &["sql", "one_page_checkout"]).stdout), sql);
+    assert_eq!(
+        text(&plumb(dir.path(), &["sql", "one_page_checkout"]).stdout),
+        sql
+    );
     insta::assert_snapshot!("demo_one_page_checkout_duckdb", sql);
     let generic = text(&plumb(dir.path(), &["sql", "one_page_checkout", "--dialect", "generic"]).stdout);
     plumb::validate::validate(&generic, "generic").unwrap();
@@ -140,8 +157,22 @@ fn user_dialect_folder_overrides_without_recompiling() {
     let ws = workspace(&[("ok.yaml", &body)]);
     let dialects = ws.path().join("my-dialects/shouty");
     std::fs::create_dir_all(&dialects).unwrap();
-    std::fs::write(dialects.join("dialect.yaml"), "float_type: FLOAT8\nfilter_clause: true\n").unwrap();
-    let out = plumb(ws.path(), &["--dialects-dir", "my-dialects", "sql", "checkout", "--dialect", "shouty"]);
+    std::fs::write(
+        dialects.join("dialect.yaml"),
+        "float_type: FLOAT8\nfilter_clause: true\n",
+    )
+    .unwrap();
+    let out = plumb(
+        ws.path(),
+        &[
+            "--dialects-dir",
+            "my-dialects",
+            "sql",
+            "checkout",
+            "--dialect",
+            "shouty",
+        ],
+    );
     assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
     let sql = text(&out.stdout);
     assert!(sql.contains("AS FLOAT8)"), "{sql}");

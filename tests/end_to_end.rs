@@ -14,7 +14,11 @@ fn handmade_workspace() -> tempfile::TempDir {
     let root = Path::new(env!("CARGO_MANIFEST_DIR"));
     let dir = tempfile::tempdir().unwrap();
     std::fs::create_dir_all(dir.path().join("metrics")).unwrap();
-    std::fs::copy(root.join("tests/fixtures/handmade.yaml"), dir.path().join("metrics/handmade.yaml")).unwrap();
+    std::fs::copy(
+        root.join("tests/fixtures/handmade.yaml"),
+        dir.path().join("metrics/handmade.yaml"),
+    )
+    .unwrap();
     let data = root.join("tests/data/handmade");
     std::fs::write(
         dir.path().join("plumb.yaml"),
@@ -86,8 +90,16 @@ fn handmade_dataset_matches_hand_computation() {
             let (mean, var) = moments(expected.as_slice(), col);
             let got: &Moments = &row.columns[*name];
             assert_eq!(got.n, 3, "{arm} {name}: zero-event units are counted");
-            assert!((got.mean - mean).abs() < 1e-12, "{arm} {name} mean {} vs {mean}", got.mean);
-            assert!((got.var - var).abs() < 1e-9, "{arm} {name} var {} vs {var}", got.var);
+            assert!(
+                (got.mean - mean).abs() < 1e-12,
+                "{arm} {name} mean {} vs {mean}",
+                got.mean
+            );
+            assert!(
+                (got.var - var).abs() < 1e-9,
+                "{arm} {name} var {} vs {var}",
+                got.var
+            );
         }
         let c = row.covariances["avg_basket"];
         assert!((c - cov(expected.as_slice(), 1, 0)).abs() < 1e-9, "{arm} cov {c}");
@@ -126,22 +138,50 @@ fn demo_readout_shows_the_injected_effect_and_a_clean_aa_test() {
     };
     let main = run("one_page_checkout");
     // The stable keys of the JSON document.
-    for key in ["experiment", "control", "arms", "excluded", "sample_ratio", "results"] {
+    for key in [
+        "experiment",
+        "control",
+        "arms",
+        "excluded",
+        "sample_ratio",
+        "results",
+    ] {
         assert!(main.get(key).is_some(), "missing key {key}");
     }
     assert_eq!(main["experiment"], "one_page_checkout");
     assert_eq!(main["sample_ratio"]["mismatch"], false);
-    assert!(main["excluded"]["multiple_arms"].as_u64().unwrap() > 0, "the demo injects units in two arms");
+    assert!(
+        main["excluded"]["multiple_arms"].as_u64().unwrap() > 0,
+        "the demo injects units in two arms"
+    );
     let row = |doc: &serde_json::Value, metric: &str| -> serde_json::Value {
-        doc["results"].as_array().unwrap().iter().find(|r| r["metric"] == metric).unwrap().clone()
+        doc["results"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|r| r["metric"] == metric)
+            .unwrap()
+            .clone()
     };
     let orders = row(&main, "orders");
-    for key in ["metric", "role", "arm", "segment", "control", "treatment", "difference", "relative"] {
+    for key in [
+        "metric",
+        "role",
+        "arm",
+        "segment",
+        "control",
+        "treatment",
+        "difference",
+        "relative",
+    ] {
         assert!(orders.get(key).is_some(), "result row missing {key}");
     }
     assert_eq!(orders["role"], "primary");
     assert!(orders["difference"]["estimate"].as_f64().unwrap() > 0.0);
-    assert!(orders["difference"]["p_value"].as_f64().unwrap() < 0.05, "{orders}");
+    assert!(
+        orders["difference"]["p_value"].as_f64().unwrap() < 0.05,
+        "{orders}"
+    );
 
     let aa = run("care_guide_banner");
     assert_eq!(aa["sample_ratio"]["mismatch"], false);

@@ -22,7 +22,10 @@ fn column(name: &str) -> Vec<f64> {
 }
 
 fn assert_close(got: f64, want: f64, tol: f64, what: &str) {
-    assert!((got - want).abs() <= tol, "{what}: got {got}, want {want} ± {tol}");
+    assert!(
+        (got - want).abs() <= tol,
+        "{what}: got {got}, want {want} ± {tol}"
+    );
 }
 
 fn assert_rel(got: f64, want: f64, rel: f64, what: &str) {
@@ -41,8 +44,18 @@ fn nist_strd_univariate_mean_and_sd() {
     let cases = [
         ("nist_strd_lew.csv", -177.435, 277.332168044316, 1e-12),
         ("nist_strd_lottery.csv", 518.958715596330, 291.699727470969, 1e-12),
-        ("nist_strd_mavro.csv", 2.00185600000000, 0.000429123454003053, 1e-9),
-        ("nist_strd_michelso.csv", 299.852400000000, 0.0790105478190518, 1e-9),
+        (
+            "nist_strd_mavro.csv",
+            2.00185600000000,
+            0.000429123454003053,
+            1e-9,
+        ),
+        (
+            "nist_strd_michelso.csv",
+            299.852400000000,
+            0.0790105478190518,
+            1e-9,
+        ),
         ("nist_strd_numacc1.csv", 10000002.0, 1.0, 1e-12),
         ("nist_strd_numacc2.csv", 1.2, 0.1, 1e-12),
         ("nist_strd_numacc3.csv", 1000000.2, 0.1, 1e-9),
@@ -59,9 +72,15 @@ fn nist_strd_univariate_mean_and_sd() {
 fn sleep_groups() -> (Moments, Moments) {
     let (_, rows) = read_csv("r_sleep.csv");
     let values = |g: &str| -> Vec<f64> {
-        rows.iter().filter(|r| r[0] == g).map(|r| r[1].parse().unwrap()).collect()
+        rows.iter()
+            .filter(|r| r[0] == g)
+            .map(|r| r[1].parse().unwrap())
+            .collect()
     };
-    (Moments::from_values(&values("1")), Moments::from_values(&values("2")))
+    (
+        Moments::from_values(&values("1")),
+        Moments::from_values(&values("2")),
+    )
 }
 
 /// R `t.test(extra ~ group, data = sleep)` (Student 1908 data): t = -1.8608, df = 17.776,
@@ -117,12 +136,24 @@ fn goodness_of_fit_matches_r_mendel_example() {
 
 fn ratio_arm(rows: &[Vec<String>], arm: &str) -> RatioMoments {
     let pick = |i: usize| -> Vec<f64> {
-        rows.iter().filter(|r| r[0] == arm).map(|r| r[i].parse().unwrap()).collect()
+        rows.iter()
+            .filter(|r| r[0] == arm)
+            .map(|r| r[i].parse().unwrap())
+            .collect()
     };
     let (x, y) = (pick(2), pick(3));
     let (mx, my) = (Moments::from_values(&x), Moments::from_values(&y));
-    let cov = x.iter().zip(&y).map(|(a, b)| (a - mx.mean) * (b - my.mean)).sum::<f64>() / (x.len() as f64 - 1.0);
-    RatioMoments { numerator: mx, denominator: my, cov }
+    let cov = x
+        .iter()
+        .zip(&y)
+        .map(|(a, b)| (a - mx.mean) * (b - my.mean))
+        .sum::<f64>()
+        / (x.len() as f64 - 1.0);
+    RatioMoments {
+        numerator: mx,
+        denominator: my,
+        cov,
+    }
 }
 
 /// Delta method for ratio metrics (Deng, Knoblich & Lu 2018, KDD): derived values from

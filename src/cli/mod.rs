@@ -121,7 +121,10 @@ pub fn run() -> ExitCode {
         Err(Failure::Catalog(sources, diags)) => {
             eprint!("{}", diagnostics::render_plain(&sources, &diags));
             let errors = diags.iter().filter(|d| d.is_error()).count();
-            eprintln!("plumb: {errors} error{} in the catalog", if errors == 1 { "" } else { "s" });
+            eprintln!(
+                "plumb: {errors} error{} in the catalog",
+                if errors == 1 { "" } else { "s" }
+            );
             ExitCode::from(EXIT_CATALOG)
         }
         Err(Failure::Reported(code)) => ExitCode::from(code),
@@ -166,7 +169,8 @@ fn dispatch(args: &Args) -> Result<(), Failure> {
             let (ws, _) = open(&workspace_dir(args), &mut sources)?;
             let id = find_experiment(&ws, experiment)?;
             let dialect = load_dialect(args, dialect.as_deref().unwrap_or(&ws.dialect))?;
-            let (_, sql) = crate::compile_experiment(&ws.catalog, id, &dialect).map_err(|e| usage(e.to_string()))?;
+            let (_, sql) =
+                crate::compile_experiment(&ws.catalog, id, &dialect).map_err(|e| usage(e.to_string()))?;
             emit(&sql);
             Ok(())
         }
@@ -263,7 +267,9 @@ fn check(args: &Args, format: Format) -> Result<(), Failure> {
 
 #[cfg(not(feature = "engine"))]
 fn analyze(_: &Args, _: &Path, _: &str, _: f64, _: Format) -> Result<String, Failure> {
-    Err(usage("this plumb was built without the `engine` feature, so it cannot run SQL locally"))
+    Err(usage(
+        "this plumb was built without the `engine` feature, so it cannot run SQL locally",
+    ))
 }
 
 #[cfg(feature = "engine")]
@@ -274,10 +280,11 @@ fn analyze(args: &Args, dir: &Path, experiment: &str, alpha: f64, format: Format
     let id = find_experiment(&ws, experiment)?;
     // Local execution is DuckDB, whatever the workspace's warehouse dialect.
     let dialect = load_dialect(args, "duckdb")?;
-    let (plan, sql) = crate::compile_experiment(&ws.catalog, id, &dialect).map_err(|e| usage(e.to_string()))?;
+    let (plan, sql) =
+        crate::compile_experiment(&ws.catalog, id, &dialect).map_err(|e| usage(e.to_string()))?;
     let spinner = progress(&format!("running {experiment} on local DuckDB"));
-    let rows = Engine::open(ws.local_database.as_deref(), &ws.local_tables)
-        .and_then(|engine| engine.query(&sql));
+    let rows =
+        Engine::open(ws.local_database.as_deref(), &ws.local_tables).and_then(|engine| engine.query(&sql));
     if let Some(s) = spinner {
         s.finish_and_clear();
     }

@@ -170,14 +170,30 @@ fn generate(data: &Path, config: &DemoConfig, summary: &mut DemoSummary) -> std:
             let treated = rng.uniform() < 0.5;
             checkout = Some((at, treated));
             let arm = if treated { "treatment" } else { "control" };
-            write_exposure(&mut assignments, &mut line, &id, "one-page-checkout", arm, at, device)?;
+            write_exposure(
+                &mut assignments,
+                &mut line,
+                &id,
+                "one-page-checkout",
+                arm,
+                at,
+                device,
+            )?;
             summary.exposures += 1;
             // Repeat exposures (same arm): only the first counts.
             let repeats = rng.poisson(0.6);
             for _ in 0..repeats {
                 let later = at + rng.below(6 * 86_400) as i64;
                 if later < checkout_end {
-                    write_exposure(&mut assignments, &mut line, &id, "one-page-checkout", arm, later, device)?;
+                    write_exposure(
+                        &mut assignments,
+                        &mut line,
+                        &id,
+                        "one-page-checkout",
+                        arm,
+                        later,
+                        device,
+                    )?;
                     summary.exposures += 1;
                 }
             }
@@ -185,14 +201,34 @@ fn generate(data: &Path, config: &DemoConfig, summary: &mut DemoSummary) -> std:
             if rng.uniform() < 0.002 {
                 let other = if treated { "control" } else { "treatment" };
                 let later = (at + 3_600).min(checkout_end - 1);
-                write_exposure(&mut assignments, &mut line, &id, "one-page-checkout", other, later, device)?;
+                write_exposure(
+                    &mut assignments,
+                    &mut line,
+                    &id,
+                    "one-page-checkout",
+                    other,
+                    later,
+                    device,
+                )?;
                 summary.exposures += 1;
             }
         }
         if rng.uniform() < 0.6 {
             let at = checkout_start + rng.below((banner_end - checkout_start) as u64 - 3600) as i64;
-            let arm = if rng.uniform() < 0.5 { "treatment" } else { "control" };
-            write_exposure(&mut assignments, &mut line, &id, "care-guide-banner", arm, at, device)?;
+            let arm = if rng.uniform() < 0.5 {
+                "treatment"
+            } else {
+                "control"
+            };
+            write_exposure(
+                &mut assignments,
+                &mut line,
+                &id,
+                "care-guide-banner",
+                arm,
+                at,
+                device,
+            )?;
             summary.exposures += 1;
         }
 
@@ -248,6 +284,10 @@ fn write_exposure(
     device: &str,
 ) -> std::io::Result<()> {
     line.clear();
-    let _ = writeln!(line, "{id},{experiment},{arm},{},{device}", Timestamp(at).to_sql_string());
+    let _ = writeln!(
+        line,
+        "{id},{experiment},{arm},{},{device}",
+        Timestamp(at).to_sql_string()
+    );
     w.write_all(line.as_bytes())
 }

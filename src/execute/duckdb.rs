@@ -28,7 +28,10 @@ fn literal(value: &str) -> String {
 
 impl Engine {
     /// Opens DuckDB on `database` (read-only) or in memory, and maps `tables` to views.
-    pub fn open(database: Option<&Path>, tables: &[(String, std::path::PathBuf)]) -> Result<Engine, ExecuteError> {
+    pub fn open(
+        database: Option<&Path>,
+        tables: &[(String, std::path::PathBuf)],
+    ) -> Result<Engine, ExecuteError> {
         let conn = match database {
             Some(path) => {
                 let config = Config::default()
@@ -66,24 +69,35 @@ impl Engine {
             }
         };
         self.conn
-            .execute_batch(&format!("CREATE OR REPLACE TEMP VIEW {} AS SELECT * FROM {reader}", ident(name)))
-            .map_err(|e| err(&format!("reading local table `{name}` from {}", path.display()), e))
+            .execute_batch(&format!(
+                "CREATE OR REPLACE TEMP VIEW {} AS SELECT * FROM {reader}",
+                ident(name)
+            ))
+            .map_err(|e| {
+                err(
+                    &format!("reading local table `{name}` from {}", path.display()),
+                    e,
+                )
+            })
     }
 
     /// Runs one statement and returns its rows by column name.
     pub fn query(&self, sql: &str) -> Result<Vec<NamedRow>, ExecuteError> {
-        let mut stmt = self.conn.prepare(sql).map_err(|e| err("preparing the query", e))?;
+        let mut stmt = self
+            .conn
+            .prepare(sql)
+            .map_err(|e| err("preparing the query", e))?;
         let mut rows = stmt.query([]).map_err(|e| err("running the query", e))?;
-        let names: Vec<String> = rows
-            .as_ref()
-            .map(|s| s.column_names())
-            .unwrap_or_default();
+        let names: Vec<String> = rows.as_ref().map(|s| s.column_names()).unwrap_or_default();
         let mut out = Vec::new();
         while let Some(row) = rows.next().map_err(|e| err("reading the result", e))? {
             let mut named = NamedRow::new();
             for (i, name) in names.iter().enumerate() {
                 let v: Value = row.get(i).map_err(|e| err("reading the result", e))?;
-                named.insert(name.clone(), cell(v).map_err(|e| err(&format!("column `{name}`"), e))?);
+                named.insert(
+                    name.clone(),
+                    cell(v).map_err(|e| err(&format!("column `{name}`"), e))?,
+                );
             }
             out.push(named);
         }

@@ -33,15 +33,11 @@ impl<T> Item<T> {
     }
 
     pub fn value_span(&self, key: &str) -> Option<Span> {
-        self.node
-            .get(key)
-            .map(|n| Span::new(self.file, n.range.clone()))
+        self.node.get(key).map(|n| Span::new(self.file, n.range.clone()))
     }
 
     pub fn key_span(&self, key: &str) -> Option<Span> {
-        self.node
-            .key_range(key)
-            .map(|r| Span::new(self.file, r))
+        self.node.key_range(key).map(|r| Span::new(self.file, r))
     }
 
     /// Span of element `index` of a list value, e.g. the second name in `primary: [a, b]`.
@@ -92,8 +88,7 @@ impl RawWorkspace {
 
     /// Folder of the catalog (default `metrics/`).
     pub fn catalog_dir(&self) -> PathBuf {
-        self.root
-            .join(self.value.catalog.as_deref().unwrap_or("metrics"))
+        self.root.join(self.value.catalog.as_deref().unwrap_or("metrics"))
     }
 }
 
@@ -142,9 +137,12 @@ pub fn load_workspace(
         collect_yaml(&catalog_dir, &mut paths).map_err(|e| LoadError::Io(catalog_dir.clone(), e))?;
     } else {
         diags.push(
-            Diagnostic::error("E005", format!("catalog folder {} does not exist", catalog_dir.display()))
-                .at(ws.value_span(&[Seg::Key("catalog".into())]))
-                .hint("set `catalog:` in plumb.yaml to the folder holding your YAML definitions"),
+            Diagnostic::error(
+                "E005",
+                format!("catalog folder {} does not exist", catalog_dir.display()),
+            )
+            .at(ws.value_span(&[Seg::Key("catalog".into())]))
+            .hint("set `catalog:` in plumb.yaml to the folder holding your YAML definitions"),
         );
     }
     paths.sort();
@@ -158,10 +156,7 @@ pub fn load_workspace(
 }
 
 /// Loads a catalog from in-memory files (tests, `plumb diff`): `(path, text)` pairs.
-pub fn load_catalog_texts(
-    files: &[(&str, &str)],
-    sources: &mut SourceMap,
-) -> (RawCatalog, Vec<Diagnostic>) {
+pub fn load_catalog_texts(files: &[(&str, &str)], sources: &mut SourceMap) -> (RawCatalog, Vec<Diagnostic>) {
     let mut catalog = RawCatalog::default();
     let mut diags = Vec::new();
     for (path, text) in files {
@@ -280,7 +275,9 @@ pub fn parse_catalog_file(
                 diags.push(
                     Diagnostic::error("E002", format!("`{key}` must be a list"))
                         .at(Some(Span::new(file, list.range.clone())))
-                        .hint(format!("write each item on its own line starting with `- `, under `{key}:`")),
+                        .hint(format!(
+                            "write each item on its own line starting with `- `, under `{key}:`"
+                        )),
                 );
                 continue;
             }
@@ -328,13 +325,7 @@ pub fn parse_catalog_file(
 }
 
 /// Reports every key of the mapping `node` that is not in `allowed`, with a did-you-mean.
-fn check_keys(
-    file: FileId,
-    node: &Node,
-    allowed: &[&str],
-    what: &str,
-    diags: &mut Vec<Diagnostic>,
-) {
+fn check_keys(file: FileId, node: &Node, allowed: &[&str], what: &str, diags: &mut Vec<Diagnostic>) {
     let NodeKind::Map(entries) = &node.kind else {
         return;
     };

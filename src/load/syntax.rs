@@ -168,7 +168,16 @@ pub const KINDS: &[(&str, &[&str])] = &[
     ("units", &["name", "description"]),
     (
         "event_tables",
-        &["name", "description", "unit", "table", "sql", "id", "time", "where"],
+        &[
+            "name",
+            "description",
+            "unit",
+            "table",
+            "sql",
+            "id",
+            "time",
+            "where",
+        ],
     ),
     (
         "exposure_logs",

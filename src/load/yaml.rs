@@ -42,10 +42,7 @@ impl Node {
 
     pub fn key_range(&self, key: &str) -> Option<Range<usize>> {
         match &self.kind {
-            NodeKind::Map(entries) => entries
-                .iter()
-                .find(|(k, _, _)| k == key)
-                .map(|e| e.1.clone()),
+            NodeKind::Map(entries) => entries.iter().find(|(k, _, _)| k == key).map(|e| e.1.clone()),
             _ => None,
         }
     }
@@ -80,12 +77,10 @@ pub fn parse(text: &str) -> Result<Option<Node>, SyntaxError> {
         root: None,
     };
     let mut parser = Parser::new_from_str(text);
-    parser
-        .load(&mut builder, false)
-        .map_err(|e| SyntaxError {
-            offset: builder.char_to_byte.byte(e.marker().index()),
-            message: e.info().to_string(),
-        })?;
+    parser.load(&mut builder, false).map_err(|e| SyntaxError {
+        offset: builder.char_to_byte.byte(e.marker().index()),
+        message: e.info().to_string(),
+    })?;
     Ok(builder.root)
 }
 
@@ -109,7 +104,11 @@ impl CharIndex {
 
 enum Frame {
     Seq(usize, Vec<Node>),
-    Map(usize, Vec<(String, Range<usize>, Node)>, Option<(String, Range<usize>)>),
+    Map(
+        usize,
+        Vec<(String, Range<usize>, Node)>,
+        Option<(String, Range<usize>)>,
+    ),
 }
 
 struct Builder<'a> {

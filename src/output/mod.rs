@@ -39,7 +39,14 @@ fn row_cells(r: &ResultRow) -> Vec<Cell> {
     let diff = r
         .difference
         .as_ref()
-        .map(|d| format!("{} [{}, {}]", sig(d.estimate, 3), sig(d.ci_low, 3), sig(d.ci_high, 3)))
+        .map(|d| {
+            format!(
+                "{} [{}, {}]",
+                sig(d.estimate, 3),
+                sig(d.ci_low, 3),
+                sig(d.ci_high, 3)
+            )
+        })
         .unwrap_or_else(|| "-".into());
     let rel = r
         .relative

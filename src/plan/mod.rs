@@ -226,7 +226,8 @@ mod tests {
 
     #[test]
     fn qualifies_bare_columns_only() {
-        let e = crate::resolve::sql::parse_expr("status = 'paid' and lower(x.k) = 'a' and amount > 0").unwrap();
+        let e =
+            crate::resolve::sql::parse_expr("status = 'paid' and lower(x.k) = 'a' and amount > 0").unwrap();
         assert_eq!(
             qualify(&e, "e").to_string(),
             "e.status = 'paid' AND lower(x.k) = 'a' AND e.amount > 0"

@@ -12,7 +12,7 @@
 //! [`Dialect::ident`] / [`Dialect::literal`]; templates never quote by hand.
 
 use crate::ir::{Aggregation, Source};
-use crate::plan::{Aggregate, ExperimentPlan, EventScan};
+use crate::plan::{Aggregate, EventScan, ExperimentPlan};
 use crate::time::Timestamp;
 use minijinja::{Environment, UndefinedBehavior, context};
 use serde::{Deserialize, Serialize};
@@ -21,13 +21,21 @@ use std::path::{Path, PathBuf};
 
 /// Built-in dialect files, embedded at compile time: (dialect, file name, text).
 const BUILTIN: &[(&str, &str, &str)] = &[
-    ("generic", "dialect.yaml", include_str!("../../dialects/generic/dialect.yaml")),
+    (
+        "generic",
+        "dialect.yaml",
+        include_str!("../../dialects/generic/dialect.yaml"),
+    ),
     (
         "generic",
         "experiment.sql.j2",
         include_str!("../../dialects/generic/experiment.sql.j2"),
     ),
-    ("duckdb", "dialect.yaml", include_str!("../../dialects/duckdb/dialect.yaml")),
+    (
+        "duckdb",
+        "dialect.yaml",
+        include_str!("../../dialects/duckdb/dialect.yaml"),
+    ),
 ];
 
 /// Names of the built-in dialects (the generic baseline included).
@@ -115,12 +123,20 @@ impl Dialect {
         if name != "generic"
             && let Some(text) = read_file(user_dir, name, "dialect.yaml")?
         {
-            let o: CapabilitiesOverride = serde_yaml::from_str(&text)
-                .map_err(|e| DialectError(format!("{name}/dialect.yaml: {e}")))?;
+            let o: CapabilitiesOverride =
+                serde_yaml::from_str(&text).map_err(|e| DialectError(format!("{name}/dialect.yaml: {e}")))?;
             macro_rules! apply {
                 ($($f:ident),*) => { $(if let Some(v) = o.$f { caps.$f = v; })* };
             }
-            apply!(name, sqlparser, identifier_quote, float_type, filter_clause, timestamp_literal, add_interval);
+            apply!(
+                name,
+                sqlparser,
+                identifier_quote,
+                float_type,
+                filter_clause,
+                timestamp_literal,
+                add_interval
+            );
         }
         caps.name = name.to_string();
         let mut templates = BTreeMap::new();
@@ -161,7 +177,10 @@ impl Dialect {
     }
 
     pub fn timestamp(&self, ts: Timestamp) -> Result<String, DialectError> {
-        self.snippet(&self.caps.timestamp_literal, context! { ts => ts.to_sql_string() })
+        self.snippet(
+            &self.caps.timestamp_literal,
+            context! { ts => ts.to_sql_string() },
+        )
     }
 
     /// `expr` plus `seconds`, in the largest whole unit.
@@ -176,7 +195,10 @@ impl Dialect {
         } else {
             (seconds, "second")
         };
-        self.snippet(&self.caps.add_interval, context! { expr => expr, n => n, unit => unit })
+        self.snippet(
+            &self.caps.add_interval,
+            context! { expr => expr, n => n, unit => unit },
+        )
     }
 
     /// A conditional aggregate: `agg` over rows where `cond` holds.
@@ -209,11 +231,15 @@ impl Dialect {
 
     fn scan_aggregate(&self, scan: &EventScan, agg: &Aggregate, end: &str) -> Result<String, DialectError> {
         let t = format!("e.{}", self.ident(&scan.time));
-        let mut conds = vec![
-            format!("{t} >= {}", self.add_seconds("x.first_exposed_at", agg.window.start)?),
-        ];
+        let mut conds = vec![format!(
+            "{t} >= {}",
+            self.add_seconds("x.first_exposed_at", agg.window.start)?
+        )];
         if let Some(w_end) = agg.window.end {
-            conds.push(format!("{t} < {}", self.add_seconds("x.first_exposed_at", w_end)?));
+            conds.push(format!(
+                "{t} < {}",
+                self.add_seconds("x.first_exposed_at", w_end)?
+            ));
         }
         let _ = end; // the experiment cut-off is applied once, in the scan's WHERE
         if let Some(f) = &agg.filter {

@@ -79,7 +79,10 @@ impl Resolver<'_> {
                 self.push(
                     Diagnostic::error("E010", format!("{kind} without a `name`"))
                         .at(Some(item.span()))
-                        .hint("add `name: some_name` (snake_case, unique among the {kind}s)".replace("{kind}", kind)),
+                        .hint(
+                            "add `name: some_name` (snake_case, unique among the {kind}s)"
+                                .replace("{kind}", kind),
+                        ),
                 );
                 continue;
             };
@@ -116,7 +119,9 @@ impl Resolver<'_> {
         let mut d = Diagnostic::error("E012", format!("unknown {kind} `{name}`")).at(span);
         d = match did_you_mean(name, names.keys().map(String::as_str)) {
             Some(h) => d.hint(h),
-            None if names.is_empty() => d.hint(format!("declare it in a catalog file under the {kind}s list")),
+            None if names.is_empty() => {
+                d.hint(format!("declare it in a catalog file under the {kind}s list"))
+            }
             None => d.hint(format!(
                 "known {kind}s: {}",
                 names.keys().cloned().collect::<Vec<_>>().join(", ")
@@ -134,7 +139,9 @@ impl Resolver<'_> {
                 self.push(
                     Diagnostic::error("E016", format!("invalid SQL in `{key}`: {}", e.message))
                         .at(span)
-                        .hint("write a single SQL expression over the table's columns, e.g. `status = 'paid'`"),
+                        .hint(
+                            "write a single SQL expression over the table's columns, e.g. `status = 'paid'`",
+                        ),
                 );
                 None
             }
@@ -156,7 +163,13 @@ impl Resolver<'_> {
         Some(Span::new(whole.file, start..end))
     }
 
-    fn source<T>(&mut self, item: &Item<T>, table: &Option<String>, query: &Option<String>, kind: &str) -> Option<Source> {
+    fn source<T>(
+        &mut self,
+        item: &Item<T>,
+        table: &Option<String>,
+        query: &Option<String>,
+        kind: &str,
+    ) -> Option<Source> {
         match (table.as_deref(), query.as_deref()) {
             (Some(_), Some(_)) => {
                 self.push(
@@ -275,8 +288,12 @@ impl Resolver<'_> {
                 .required(item, &v.unit, "unit", "an event table", "shopper")
                 .and_then(|u| self.reference(&unit_names, u, "unit", item.value_span("unit")));
             let source = self.source(item, &v.table, &v.sql, "an event table");
-            let id = self.required(item, &v.id, "id", "an event table", "shopper_id").map(str::to_string);
-            let time = self.required(item, &v.time, "time", "an event table", "happened_at").map(str::to_string);
+            let id = self
+                .required(item, &v.id, "id", "an event table", "shopper_id")
+                .map(str::to_string);
+            let time = self
+                .required(item, &v.time, "time", "an event table", "happened_at")
+                .map(str::to_string);
             let filter = v.where_.as_deref().and_then(|w| self.fragment(item, "where", w));
             out.event_tables.push(ir::EventTable {
                 name: v.name.clone().unwrap_or_default(),
@@ -295,7 +312,9 @@ impl Resolver<'_> {
                 .and_then(|u| self.reference(&unit_names, u, "unit", item.value_span("unit")));
             let source = self.source(item, &v.table, &v.sql, "an exposure log");
             let mut col = |key: &str, val: &Option<String>, ex: &str| {
-                self.required(item, val, key, "an exposure log", ex).map(str::to_string).unwrap_or_default()
+                self.required(item, val, key, "an exposure log", ex)
+                    .map(str::to_string)
+                    .unwrap_or_default()
             };
             let id = col("id", &v.id, "shopper_id");
             let time = col("time", &v.time, "exposed_at");
@@ -331,7 +350,9 @@ impl Resolver<'_> {
                     .required(item, &v.unit, "unit", "a segment", "shopper")
                     .and_then(|u| self.reference(&unit_names, u, "unit", item.value_span("unit")));
                 let source = self.source(item, &v.table, &None, "a segment");
-                let id = self.required(item, &v.id, "id", "a segment", "shopper_id").map(str::to_string);
+                let id = self
+                    .required(item, &v.id, "id", "a segment", "shopper_id")
+                    .map(str::to_string);
                 let value = self
                     .required(item, &v.value, "value", "a segment", "region")
                     .map(str::to_string)
@@ -340,9 +361,7 @@ impl Resolver<'_> {
                     unit: unit.unwrap_or(0),
                     source: source.unwrap_or(Source::Table(vec![])),
                     id: id.unwrap_or_default(),
-                    value: value.unwrap_or(sqlparser::ast::Expr::Value(
-                        sqlparser::ast::Value::Null.into(),
-                    )),
+                    value: value.unwrap_or(sqlparser::ast::Expr::Value(sqlparser::ast::Value::Null.into())),
                     time: v.time.clone(),
                 }
             };
@@ -443,7 +462,9 @@ impl Resolver<'_> {
                     self.push(
                         Diagnostic::error("E020", format!("`{name}` is itself a ratio"))
                             .at(span)
-                            .hint("a ratio's numerator and denominator must be event metrics (count, sum, ...)"),
+                            .hint(
+                                "a ratio's numerator and denominator must be event metrics (count, sum, ...)",
+                            ),
                     );
                     return metric;
                 }
@@ -500,7 +521,9 @@ impl Resolver<'_> {
                 let kinds = ["count", "sum", "distinct", "any", "min", "max", "at_least"];
                 let mut d = Diagnostic::error("E017", format!("unknown per_unit `{other}`"))
                     .at(item.value_span("per_unit"));
-                d = d.hint(did_you_mean(other, kinds).unwrap_or_else(|| format!("use one of: {}", kinds.join(", "))));
+                d = d.hint(
+                    did_you_mean(other, kinds).unwrap_or_else(|| format!("use one of: {}", kinds.join(", "))),
+                );
                 self.push(d);
                 None
             }
@@ -563,7 +586,9 @@ impl Resolver<'_> {
         let exposures = self
             .required(item, &v.exposures, "exposures", "an experiment", "assignments")
             .and_then(|l| self.reference(logs, l, "exposure log", item.value_span("exposures")));
-        let control = self.required(item, &v.control, "control", "an experiment", "control").map(str::to_string);
+        let control = self
+            .required(item, &v.control, "control", "an experiment", "control")
+            .map(str::to_string);
 
         // Split: positive shares, control among them, at least two arms.
         let mut arms = Vec::new();
@@ -603,10 +628,13 @@ impl Resolver<'_> {
                         }
                         None => {
                             let names: Vec<&str> = arms.iter().map(|a| a.name.as_str()).collect();
-                            let mut d = Diagnostic::error("E018", format!("control arm `{c}` is not in `split`"))
-                                .at(item.value_span("control"));
-                            d = d.hint(did_you_mean(c, names.iter().copied())
-                                .unwrap_or_else(|| format!("arms in split: {}", names.join(", "))));
+                            let mut d =
+                                Diagnostic::error("E018", format!("control arm `{c}` is not in `split`"))
+                                    .at(item.value_span("control"));
+                            d = d.hint(
+                                did_you_mean(c, names.iter().copied())
+                                    .unwrap_or_else(|| format!("arms in split: {}", names.join(", "))),
+                            );
                             self.push(d);
                         }
                     }
@@ -692,9 +720,14 @@ impl Resolver<'_> {
                     let mu = &out.units[out.metrics[id].unit].name;
                     let eu = &out.units[u].name;
                     self.push(
-                        Diagnostic::error("E013", format!("metric `{m}` is per {mu}, but this experiment randomises {eu}s"))
-                            .at(span.clone())
-                            .hint(format!("use a metric whose event table has `unit: {eu}`, or an exposure log of {mu}s")),
+                        Diagnostic::error(
+                            "E013",
+                            format!("metric `{m}` is per {mu}, but this experiment randomises {eu}s"),
+                        )
+                        .at(span.clone())
+                        .hint(format!(
+                            "use a metric whose event table has `unit: {eu}`, or an exposure log of {mu}s"
+                        )),
                     );
                     continue;
                 }
@@ -715,7 +748,11 @@ impl Resolver<'_> {
                 segment_ids.push(id);
             }
         }
-        let key = v.key.as_ref().map(|k| k.0.clone()).unwrap_or_else(|| name.clone());
+        let key = v
+            .key
+            .as_ref()
+            .map(|k| k.0.clone())
+            .unwrap_or_else(|| name.clone());
         Some(ir::Experiment {
             name,
             description: v.description.clone(),

@@ -25,9 +25,7 @@ fn error(e: impl ToString) -> FragmentError {
         None => message,
     };
     FragmentError {
-        message: message
-            .trim_start_matches("sql parser error: ")
-            .to_string(),
+        message: message.trim_start_matches("sql parser error: ").to_string(),
         line,
         column,
     }

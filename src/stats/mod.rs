@@ -22,7 +22,11 @@ impl Moments {
     pub fn from_values(values: &[f64]) -> Moments {
         let n = values.len();
         if n == 0 {
-            return Moments { n: 0, mean: f64::NAN, var: f64::NAN };
+            return Moments {
+                n: 0,
+                mean: f64::NAN,
+                var: f64::NAN,
+            };
         }
         let mean = values.iter().sum::<f64>() / n as f64;
         let mean = mean + values.iter().map(|v| v - mean).sum::<f64>() / n as f64;
@@ -33,7 +37,11 @@ impl Moments {
             let comp: f64 = values.iter().map(|v| v - mean).sum();
             (ss - comp * comp / n as f64) / (n as f64 - 1.0)
         };
-        Moments { n: n as u64, mean, var }
+        Moments {
+            n: n as u64,
+            mean,
+            var,
+        }
     }
 
     pub fn sd(&self) -> f64 {
@@ -115,8 +123,7 @@ pub fn welch(control: &Moments, treatment: &Moments, alpha: f64) -> Option<Estim
     let a = treatment.var_of_mean();
     let b = control.var_of_mean();
     let se = (a + b).sqrt();
-    let df = (a + b).powi(2)
-        / (a * a / (treatment.n as f64 - 1.0) + b * b / (control.n as f64 - 1.0));
+    let df = (a + b).powi(2) / (a * a / (treatment.n as f64 - 1.0) + b * b / (control.n as f64 - 1.0));
     let df = if df.is_finite() { df } else { f64::INFINITY };
     estimate(treatment.mean - control.mean, se, df, alpha)
 }
@@ -170,7 +177,12 @@ pub fn ratio_difference(control: &RatioMoments, treatment: &RatioMoments, alpha:
         return None;
     }
     let var = control.var_of_ratio() + treatment.var_of_ratio();
-    estimate(treatment.ratio() - control.ratio(), var.max(0.0).sqrt(), f64::INFINITY, alpha)
+    estimate(
+        treatment.ratio() - control.ratio(),
+        var.max(0.0).sqrt(),
+        f64::INFINITY,
+        alpha,
+    )
 }
 
 /// Relative difference of two ratio metrics, R_t/R_c − 1, delta method (same paper, §3).
@@ -227,7 +239,11 @@ mod tests {
 
     #[test]
     fn zero_variance_has_no_p_value() {
-        let c = Moments { n: 10, mean: 1.0, var: 0.0 };
+        let c = Moments {
+            n: 10,
+            mean: 1.0,
+            var: 0.0,
+        };
         let e = welch(&c, &c, 0.05).unwrap();
         assert_eq!(e.estimate, 0.0);
         assert_eq!(e.p_value, None);
@@ -235,7 +251,11 @@ mod tests {
 
     #[test]
     fn too_few_units_give_nothing() {
-        let c = Moments { n: 1, mean: 1.0, var: f64::NAN };
+        let c = Moments {
+            n: 1,
+            mean: 1.0,
+            var: f64::NAN,
+        };
         assert!(welch(&c, &c, 0.05).is_none());
         assert!(relative(&c, &c, 0.05).is_none());
     }

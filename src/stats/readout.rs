@@ -229,7 +229,11 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
             });
         }
     }
-    let observed: Vec<u64> = spec.arms.iter().map(|(a, _)| row(a).map(|r| r.units).unwrap_or(0)).collect();
+    let observed: Vec<u64> = spec
+        .arms
+        .iter()
+        .map(|(a, _)| row(a).map(|r| r.units).unwrap_or(0))
+        .collect();
     let shares: Vec<f64> = spec.arms.iter().map(|(_, s)| *s).collect();
     let srm = super::sample_ratio(&observed, &shares);
 
@@ -281,9 +285,11 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
                 Some(_) => "decrease",
             };
             let verdict = match (change, m.higher_is_better) {
-                ("increase", Some(up)) | ("decrease", Some(up)) => {
-                    Some(if (change == "increase") == up { "better" } else { "worse" })
-                }
+                ("increase", Some(up)) | ("decrease", Some(up)) => Some(if (change == "increase") == up {
+                    "better"
+                } else {
+                    "worse"
+                }),
                 _ => None,
             };
             results.push(ResultRow {
@@ -342,7 +348,12 @@ fn assumptions(spec: &ReadoutSpec) -> Vec<String> {
     ]
 }
 
-fn cautions(spec: &ReadoutSpec, srm: Option<&SampleRatio>, ex: &Excluded, results: &[ResultRow]) -> Vec<String> {
+fn cautions(
+    spec: &ReadoutSpec,
+    srm: Option<&SampleRatio>,
+    ex: &Excluded,
+    results: &[ResultRow],
+) -> Vec<String> {
     let mut out = Vec::new();
     match srm {
         Some(s) if s.mismatch => out.push(format!(
@@ -360,7 +371,10 @@ fn cautions(spec: &ReadoutSpec, srm: Option<&SampleRatio>, ex: &Excluded, result
         ));
     }
     if ex.missing_arm > 0 {
-        out.push(format!("{} units had exposure rows without an arm and are excluded.", ex.missing_arm));
+        out.push(format!(
+            "{} units had exposure rows without an arm and are excluded.",
+            ex.missing_arm
+        ));
     }
     if ex.unknown_arm > 0 {
         out.push(format!(
@@ -374,7 +388,10 @@ fn cautions(spec: &ReadoutSpec, srm: Option<&SampleRatio>, ex: &Excluded, result
             ex.rows_without_unit
         ));
     }
-    let comparisons = results.iter().filter(|r| r.difference.as_ref().is_some_and(|d| d.p_value.is_some())).count();
+    let comparisons = results
+        .iter()
+        .filter(|r| r.difference.as_ref().is_some_and(|d| d.p_value.is_some()))
+        .count();
     if comparisons > 1 {
         out.push(format!(
             "{comparisons} comparisons are shown and p-values are not adjusted for multiplicity: about {:.1} of them would look significant at alpha = {} by chance alone.",
@@ -384,7 +401,9 @@ fn cautions(spec: &ReadoutSpec, srm: Option<&SampleRatio>, ex: &Excluded, result
     }
     let thin = results.iter().filter(|r| r.change == "not enough data").count();
     if thin > 0 {
-        out.push(format!("{thin} results have too few units (fewer than two per arm with a value) to compare."));
+        out.push(format!(
+            "{thin} results have too few units (fewer than two per arm with a value) to compare."
+        ));
     }
     if results.iter().any(|r| r.change == "no detectable change") {
         out.push("\"No detectable change\" is not evidence of no effect: the interval shows which effects the data cannot rule out.".into());
