@@ -76,7 +76,7 @@ pub enum SegmentKind {
         unit: UnitId,
         source: Source,
         id: String,
-        value: Expr,
+        value: Box<Expr>,
         /// When set, the value as of the unit's first exposure.
         time: Option<String>,
     },
@@ -134,8 +134,8 @@ pub enum MetricKind {
     Events {
         table: EventTableId,
         aggregation: Aggregation,
-        value: Option<Expr>,
-        filter: Option<Expr>,
+        value: Option<Box<Expr>>,
+        filter: Option<Box<Expr>>,
         window: Window,
     },
     Ratio {

@@ -102,7 +102,12 @@ pub fn readout_text(r: &Readout) -> String {
         "Excluded units: {} in several arms, {} without arm, {} in unknown arms\n\n",
         ex.multiple_arms, ex.missing_arm, ex.unknown_arm
     ));
-    let conf = format!("{}% CI", sig((1.0 - r.alpha) * 100.0, 3));
+    let level = (1.0 - r.alpha) * 100.0;
+    let conf = if level.fract() == 0.0 {
+        format!("{level:.0}% CI")
+    } else {
+        format!("{}% CI", sig(level, 3))
+    };
     let mut table = Table::new();
     table
         .load_preset(presets::UTF8_FULL_CONDENSED)

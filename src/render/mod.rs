@@ -38,6 +38,9 @@ const BUILTIN: &[(&str, &str, &str)] = &[
     ),
 ];
 
+/// Templates a dialect consists of; each falls back to the generic one.
+const TEMPLATES: &[&str] = &["experiment.sql.j2"];
+
 /// Names of the built-in dialects (the generic baseline included).
 pub fn builtin_dialects() -> Vec<&'static str> {
     let mut names: Vec<&str> = BUILTIN.iter().map(|(d, _, _)| *d).collect();
@@ -140,7 +143,7 @@ impl Dialect {
         }
         caps.name = name.to_string();
         let mut templates = BTreeMap::new();
-        for file in ["experiment.sql.j2"] {
+        for file in TEMPLATES {
             let text = match read_file(user_dir, name, file)? {
                 Some(t) => t,
                 None => read_file(user_dir, "generic", file)?

@@ -361,7 +361,9 @@ impl Resolver<'_> {
                     unit: unit.unwrap_or(0),
                     source: source.unwrap_or(Source::Table(vec![])),
                     id: id.unwrap_or_default(),
-                    value: value.unwrap_or(sqlparser::ast::Expr::Value(sqlparser::ast::Value::Null.into())),
+                    value: Box::new(
+                        value.unwrap_or(sqlparser::ast::Expr::Value(sqlparser::ast::Value::Null.into())),
+                    ),
                     time: v.time.clone(),
                 }
             };
@@ -552,10 +554,14 @@ impl Resolver<'_> {
                 );
                 None
             }
-            (_, Some(text)) => self.fragment(item, "of", text),
+            (_, Some(text)) => self.fragment(item, "of", text).map(Box::new),
             _ => None,
         };
-        let filter = v.where_.as_deref().and_then(|w| self.fragment(item, "where", w));
+        let filter = v
+            .where_
+            .as_deref()
+            .and_then(|w| self.fragment(item, "where", w))
+            .map(Box::new);
         let window = self.window(item);
         if let Some(t) = table {
             metric.unit = out.event_tables[t].unit;
