@@ -291,3 +291,39 @@ fn write_exposure(
     );
     w.write_all(line.as_bytes())
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn same_seed_gives_identical_files_and_another_seed_does_not() {
+        let config = DemoConfig {
+            seed: 7,
+            shoppers: 500,
+        };
+        let (a, b) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
+        write_demo(a.path(), &config).unwrap();
+        write_demo(b.path(), &config).unwrap();
+        for f in ["visits.csv", "orders.csv", "assignments.csv", "shoppers.csv"] {
+            let (x, y) = (
+                std::fs::read(a.path().join("data").join(f)).unwrap(),
+                std::fs::read(b.path().join("data").join(f)).unwrap(),
+            );
+            assert_eq!(x, y, "{f} differs between runs with the same seed");
+        }
+        let c = tempfile::tempdir().unwrap();
+        write_demo(
+            c.path(),
+            &DemoConfig {
+                seed: 8,
+                shoppers: 500,
+            },
+        )
+        .unwrap();
+        assert_ne!(
+            std::fs::read(a.path().join("data/visits.csv")).unwrap(),
+            std::fs::read(c.path().join("data/visits.csv")).unwrap()
+        );
+    }
+}
