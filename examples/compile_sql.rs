@@ -53,6 +53,6 @@ fn main() {
     };
     let dialect = Dialect::load("generic", None).expect("built-in dialect");
     let id = catalog.experiment("free_shipping").expect("declared above");
-    let (_plan, sql) = plumb::compile_experiment(&catalog, id, &dialect).expect("valid SQL");
+    let (_plan, sql) = plumb::compile_experiment(&catalog, id, &[], &dialect).expect("valid SQL");
     print!("{sql}");
 }

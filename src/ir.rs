@@ -56,6 +56,8 @@ pub struct EventTable {
     pub id: String,
     pub time: String,
     pub filter: Option<Expr>,
+    /// Declared columns (`columns:`), when given; fragments are checked against them.
+    pub columns: Option<Vec<String>>,
 }
 
 #[derive(Debug, Clone)]
@@ -123,6 +125,16 @@ pub struct Window {
     pub end: Option<i64>,
 }
 
+/// A cap on per-unit values (`winsorize`).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Cap {
+    /// At this quantile (0..1) of the per-unit values of all exposed units, computed in the
+    /// same query.
+    Percentile(f64),
+    /// At this absolute value.
+    Absolute(f64),
+}
+
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Direction {
     Increase,
@@ -137,6 +149,7 @@ pub enum MetricKind {
         value: Option<Box<Expr>>,
         filter: Option<Box<Expr>>,
         window: Window,
+        cap: Option<Cap>,
     },
     Ratio {
         numerator: MetricId,

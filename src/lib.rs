@@ -34,12 +34,15 @@ use render::{Dialect, DialectError};
 use stats::readout::{MetricShape, MetricSpec, ReadoutSpec};
 
 /// Plans, renders and validates the readout query of one experiment.
+///
+/// `by` adds segments to those the experiment declares (`plumb sql --by`, `analyze --by`).
 pub fn compile_experiment(
     catalog: &Catalog,
     experiment: ExperimentId,
+    by: &[ir::SegmentId],
     dialect: &Dialect,
 ) -> Result<(ExperimentPlan, String), DialectError> {
-    let plan = plan::plan_experiment(catalog, experiment);
+    let plan = plan::plan_experiment(catalog, experiment, by);
     let sql = dialect.render_experiment(&plan)?;
     validate::validate(&sql, &dialect.caps.sqlparser).map_err(|e| {
         DialectError(format!(
@@ -82,6 +85,7 @@ pub fn readout_spec(
                         } => MetricShape::Ratio {
                             numerator: numerator.clone(),
                             denominator: denominator.clone(),
+                            covariance: plan::covariance_name(numerator, denominator),
                         },
                     },
                     higher_is_better: direction.map(|d| d == Direction::Increase),
@@ -91,5 +95,11 @@ pub fn readout_spec(
         alpha,
         start: exp.start.to_iso(),
         end: exp.end.to_iso(),
+        exploratory_segments: plan
+            .segments
+            .iter()
+            .filter(|s| !exp.segments.iter().any(|&id| catalog.segments[id].name == s.name))
+            .map(|s| s.name.clone())
+            .collect(),
     }
 }

@@ -75,7 +75,7 @@ fn handmade_dataset_matches_hand_computation() {
     };
     let dialect = plumb::render::Dialect::load("duckdb", None).unwrap();
     let id = ws.catalog.experiment("exp").unwrap();
-    let (plan, sql) = plumb::compile_experiment(&ws.catalog, id, &dialect).unwrap();
+    let (plan, sql) = plumb::compile_experiment(&ws.catalog, id, &[], &dialect).unwrap();
     let engine = Engine::open(None, &ws.local_tables).unwrap();
     let rows = engine.query(&sql).unwrap();
     let table = plumb::execute::stats_table(&plan, &rows).unwrap();
@@ -101,7 +101,7 @@ fn handmade_dataset_matches_hand_computation() {
                 got.var
             );
         }
-        let c = row.covariances["avg_basket"];
+        let c = row.covariances["revenue__cov__orders"];
         assert!((c - cov(expected.as_slice(), 1, 0)).abs() < 1e-9, "{arm} cov {c}");
     }
 

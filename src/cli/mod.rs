@@ -54,6 +54,9 @@ pub enum Command {
         /// Target dialect (default: the workspace's `dialect`).
         #[arg(long)]
         dialect: Option<String>,
+        /// Extra segments to slice by, comma-separated (besides the experiment's `segments`).
+        #[arg(long, value_delimiter = ',', value_name = "SEGMENT,...")]
+        by: Vec<String>,
     },
     /// Run an experiment's SQL on the local data and print its readout.
     Analyze {
@@ -63,6 +66,9 @@ pub enum Command {
         alpha: f64,
         #[arg(long, value_enum, default_value = "table")]
         format: Format,
+        /// Extra segments to slice by, comma-separated (shown as exploratory rows).
+        #[arg(long, value_delimiter = ',', value_name = "SEGMENT,...")]
+        by: Vec<String>,
     },
     /// Write the plant-shop demo workspace and print its main readout.
     Demo {
@@ -157,6 +163,24 @@ fn find_experiment(ws: &Workspace, name: &str) -> Result<usize, Failure> {
     })
 }
 
+fn find_segments(ws: &Workspace, names: &[String]) -> Result<Vec<usize>, Failure> {
+    names
+        .iter()
+        .map(|name| {
+            ws.catalog
+                .segments
+                .iter()
+                .position(|s| &s.name == name)
+                .ok_or_else(|| {
+                    let names: Vec<&str> = ws.catalog.segments.iter().map(|s| s.name.as_str()).collect();
+                    let hint = did_you_mean(name, names.iter().copied())
+                        .unwrap_or_else(|| format!("segments in this catalog: {}", names.join(", ")));
+                    usage(format!("unknown segment `{name}`; {hint}"))
+                })
+        })
+        .collect()
+}
+
 fn load_dialect(args: &Args, name: &str) -> Result<Dialect, Failure> {
     Dialect::load(name, args.dialects_dir.as_deref()).map_err(|e| usage(e.to_string()))
 }
@@ -164,13 +188,18 @@ fn load_dialect(args: &Args, name: &str) -> Result<Dialect, Failure> {
 fn dispatch(args: &Args) -> Result<(), Failure> {
     match &args.command {
         Command::Check { format } => check(args, *format),
-        Command::Sql { experiment, dialect } => {
+        Command::Sql {
+            experiment,
+            dialect,
+            by,
+        } => {
             let mut sources = SourceMap::new();
             let (ws, _) = open(&workspace_dir(args), &mut sources)?;
             let id = find_experiment(&ws, experiment)?;
+            let by = find_segments(&ws, by)?;
             let dialect = load_dialect(args, dialect.as_deref().unwrap_or(&ws.dialect))?;
-            let (_, sql) =
-                crate::compile_experiment(&ws.catalog, id, &dialect).map_err(|e| usage(e.to_string()))?;
+            let (_, sql) = crate::compile_experiment(&ws.catalog, id, &by, &dialect)
+                .map_err(|e| usage(e.to_string()))?;
             emit(&sql);
             Ok(())
         }
@@ -178,11 +207,12 @@ fn dispatch(args: &Args) -> Result<(), Failure> {
             experiment,
             alpha,
             format,
+            by,
         } => {
             if !(*alpha > 0.0 && *alpha < 1.0) {
                 return Err(usage(format!("--alpha must be between 0 and 1, got {alpha}")));
             }
-            let text = analyze(args, &workspace_dir(args), experiment, *alpha, *format)?;
+            let text = analyze(args, &workspace_dir(args), experiment, by, *alpha, *format)?;
             emit(&text);
             Ok(())
         }
@@ -209,7 +239,7 @@ fn dispatch(args: &Args) -> Result<(), Failure> {
                 started.elapsed().as_secs_f64()
             );
             if !no_readout {
-                let text = analyze(args, dir, crate::demo::MAIN_EXPERIMENT, 0.05, Format::Table)?;
+                let text = analyze(args, dir, crate::demo::MAIN_EXPERIMENT, &[], 0.05, Format::Table)?;
                 emit(&text);
                 eprintln!(
                     "plumb: next, try `plumb --workspace {} analyze care_guide_banner` (an A/A test) or `plumb --workspace {} sql {}`",
@@ -248,7 +278,7 @@ fn check(args: &Args, format: Format) -> Result<(), Failure> {
     // Every experiment must also compile in the workspace dialect.
     let dialect = load_dialect(args, &ws.dialect)?;
     for id in 0..ws.catalog.experiments.len() {
-        crate::compile_experiment(&ws.catalog, id, &dialect).map_err(|e| usage(e.to_string()))?;
+        crate::compile_experiment(&ws.catalog, id, &[], &dialect).map_err(|e| usage(e.to_string()))?;
     }
     let c = &ws.catalog;
     emit(&format!(
@@ -266,22 +296,30 @@ fn check(args: &Args, format: Format) -> Result<(), Failure> {
 }
 
 #[cfg(not(feature = "engine"))]
-fn analyze(_: &Args, _: &Path, _: &str, _: f64, _: Format) -> Result<String, Failure> {
+fn analyze(_: &Args, _: &Path, _: &str, _: &[String], _: f64, _: Format) -> Result<String, Failure> {
     Err(usage(
         "this plumb was built without the `engine` feature, so it cannot run SQL locally",
     ))
 }
 
 #[cfg(feature = "engine")]
-fn analyze(args: &Args, dir: &Path, experiment: &str, alpha: f64, format: Format) -> Result<String, Failure> {
+fn analyze(
+    args: &Args,
+    dir: &Path,
+    experiment: &str,
+    by: &[String],
+    alpha: f64,
+    format: Format,
+) -> Result<String, Failure> {
     use crate::execute::duckdb::Engine;
     let mut sources = SourceMap::new();
     let (ws, _) = open(dir, &mut sources)?;
     let id = find_experiment(&ws, experiment)?;
+    let by = find_segments(&ws, by)?;
     // Local execution is DuckDB, whatever the workspace's warehouse dialect.
     let dialect = load_dialect(args, "duckdb")?;
     let (plan, sql) =
-        crate::compile_experiment(&ws.catalog, id, &dialect).map_err(|e| usage(e.to_string()))?;
+        crate::compile_experiment(&ws.catalog, id, &by, &dialect).map_err(|e| usage(e.to_string()))?;
     let spinner = progress(&format!("running {experiment} on local DuckDB"));
     let rows =
         Engine::open(ws.local_database.as_deref(), &ws.local_tables).and_then(|engine| engine.query(&sql));

@@ -55,24 +55,41 @@ fn count(row: &NamedRow, col: &str) -> Result<u64, ExecuteError> {
     Ok(x as u64)
 }
 
-/// Reads the readout query's rows into a [`StatsTable`].
+/// Reads the readout query's rows into a [`StatsTable`]. Column names are matched without
+/// regard to case (engines that fold unquoted names return them in upper case).
 pub fn stats_table(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<StatsTable, ExecuteError> {
     let mut table = StatsTable::default();
     for (i, row) in rows.iter().enumerate() {
-        let arm = match row.get("arm") {
-            Some(Cell::Text(t)) => t.clone(),
-            Some(Cell::Number(x)) => x.to_string(),
-            Some(Cell::Null) | None => {
-                return Err(ExecuteError(format!("row {} of the result has no arm", i + 1)));
+        let row: NamedRow = row
+            .iter()
+            .map(|(k, v)| (k.to_ascii_lowercase(), v.clone()))
+            .collect();
+        let row = &row;
+        let text = |col: &str| -> Result<Option<String>, ExecuteError> {
+            match row.get(col) {
+                Some(Cell::Text(t)) => Ok(Some(t.clone())),
+                Some(Cell::Number(x)) => Ok(Some(x.to_string())),
+                Some(Cell::Null) => Ok(None),
+                None => Err(ExecuteError(format!("the result has no column `{col}`"))),
             }
+        };
+        let Some(arm) = text("arm")? else {
+            return Err(ExecuteError(format!("row {} of the result has no arm", i + 1)));
         };
         if i == 0 {
             table.excluded_multiple_arms = count(row, "excluded_multiple_arms")?;
             table.excluded_missing_arm = count(row, "excluded_missing_arm")?;
             table.excluded_rows_without_unit = count(row, "excluded_rows_without_unit")?;
         }
+        let segment = if plan.segments.is_empty() {
+            None
+        } else {
+            text("segment_name")?
+                .map(|name| -> Result<_, ExecuteError> { Ok((name, text("segment_value")?)) })
+        };
         let mut out = ArmRow {
             arm,
+            segment: segment.transpose()?,
             units: count(row, "units")?,
             ..ArmRow::default()
         };
@@ -82,9 +99,9 @@ pub fn stats_table(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<StatsTabl
             let var = number(row, &format!("{}__var", c.column))?.unwrap_or(f64::NAN);
             out.columns.insert(c.column.clone(), Moments { n, mean, var });
         }
-        for r in &plan.ratios {
-            let cov = number(row, &format!("{}__cov", r.metric))?.unwrap_or(f64::NAN);
-            out.covariances.insert(r.metric.clone(), cov);
+        for c in &plan.covariances {
+            let cov = number(row, &c.name)?.unwrap_or(f64::NAN);
+            out.covariances.insert(c.name.clone(), cov);
         }
         table.rows.push(out);
     }

@@ -101,6 +101,8 @@ pub struct EventTable {
     pub time: Option<String>,
     #[serde(rename = "where")]
     pub where_: Option<String>,
+    /// Optional list of the table's columns; SQL fragments are checked against it.
+    pub columns: Option<Vec<String>>,
 }
 
 #[derive(Debug, Clone, Deserialize, Serialize)]

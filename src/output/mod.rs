@@ -124,11 +124,48 @@ pub fn readout_text(r: &Readout) -> String {
             format!("relative [{conf}]"),
             "change".into(),
         ]);
-    for row in &r.results {
+    for row in r.results.iter().filter(|x| x.segment.is_none()) {
         table.add_row(row_cells(row));
     }
     out.push_str(&table.to_string());
     out.push('\n');
+    let segment_rows: Vec<&ResultRow> = r
+        .results
+        .iter()
+        .filter(|x| x.segment.is_some() && x.role == "primary")
+        .collect();
+    if !segment_rows.is_empty() {
+        out.push_str("\nSegments (drill-down of primary metrics; every metric is in --format json):\n");
+        let mut seg = Table::new();
+        seg.load_preset(presets::UTF8_FULL_CONDENSED)
+            .set_content_arrangement(ContentArrangement::Disabled)
+            .set_header(vec![
+                "segment".to_string(),
+                "value".into(),
+                "metric".into(),
+                "arm".into(),
+                "n (ctl / trt)".into(),
+                "control".into(),
+                "treatment".into(),
+                format!("difference [{conf}]"),
+                "p".into(),
+                format!("relative [{conf}]"),
+                "change".into(),
+            ]);
+        for row in segment_rows {
+            let s = row.segment.as_ref().expect("filtered");
+            let mut cells = vec![
+                Cell::new(&s.name),
+                Cell::new(s.value.as_deref().unwrap_or("(none)")),
+            ];
+            let mut rest = row_cells(row);
+            rest.remove(1); // role: all primary here
+            cells.extend(rest);
+            seg.add_row(cells);
+        }
+        out.push_str(&seg.to_string());
+        out.push('\n');
+    }
     if !r.cautions.is_empty() {
         out.push_str("\nCautions:\n");
         for c in &r.cautions {

@@ -1,20 +1,22 @@
 //! Stage 3, `plan`: typed IR -> a dialect-free query plan.
 //!
 //! Decides the shape of the SQL without writing any: which exposure log and experiment key to
-//! read, one scan per event table holding every per-unit column the experiment needs (metrics
-//! and the parts of ratio metrics) as conditional aggregates, the range every scan can be cut
-//! to before the join, and the arm-level statistics to compute. User fragments are qualified
-//! here with the alias of the table they belong to, so no join can make them ambiguous.
+//! read, one scan per event table holding every per-unit column the experiment needs (metrics,
+//! the parts of ratio metrics, and their pre-exposure covariates) as conditional aggregates,
+//! the time range every scan can be cut to before the join, the caps of winsorized metrics,
+//! the segments to slice by, and the arm-level moments to compute. User fragments are
+//! qualified here with the alias of the table they belong to, so no join can make them
+//! ambiguous.
 
-use crate::ir::{self, Aggregation, Catalog, MetricKind, Role, Source};
+use crate::ir::{self, Aggregation, Cap, Catalog, MetricKind, Role, SegmentKind, Source};
 use crate::time::Timestamp;
 use sqlparser::ast::{Expr, Ident, visit_expressions_mut};
 use std::ops::ControlFlow;
 
 /// Alias of the event table inside each scan.
 pub const EVENT_ALIAS: &str = "e";
-/// Alias of the exposed units inside each scan.
-pub const UNIT_ALIAS: &str = "x";
+/// Alias of a segment's attribute table.
+pub const SEGMENT_ALIAS: &str = "s";
 
 #[derive(Debug, Clone)]
 pub struct ExperimentPlan {
@@ -23,12 +25,16 @@ pub struct ExperimentPlan {
     pub start: Timestamp,
     pub end: Timestamp,
     pub scans: Vec<EventScan>,
-    /// Every per-unit column, in output order.
+    /// Every per-unit column, in output order (covariates after their metric).
     pub columns: Vec<UnitColumn>,
-    /// Ratio metrics: numerator and denominator columns, for the covariance.
-    pub ratios: Vec<RatioColumns>,
+    /// Covariances to compute per arm (ratio parts, covariates).
+    pub covariances: Vec<Covariance>,
+    /// Segments to slice by, each a grouping set besides the overall one.
+    pub segments: Vec<PlannedSegment>,
     /// The experiment's metrics with their role, in readout order.
     pub metrics: Vec<PlannedMetric>,
+    /// Length of the pre-exposure covariate window in seconds (0: none).
+    pub covariate_window: i64,
 }
 
 #[derive(Debug, Clone)]
@@ -64,6 +70,7 @@ pub struct Aggregate {
     pub aggregation: Aggregation,
     pub value: Option<Expr>,
     pub filter: Option<Expr>,
+    /// Relative to first exposure; `end: None` means up to the experiment's end.
     pub window: ir::Window,
 }
 
@@ -75,13 +82,46 @@ pub struct UnitColumn {
     pub scan: usize,
     /// Units without events get 0 (count, sum, ...); min/max stay NULL.
     pub zero_fill: bool,
+    pub cap: Option<Cap>,
+}
+
+/// `covar_samp(a, b)` per arm, output as column `name`.
+#[derive(Debug, Clone)]
+pub struct Covariance {
+    pub name: String,
+    pub a: String,
+    pub b: String,
+}
+
+/// Name of the covariance column of two per-unit columns.
+pub fn covariance_name(a: &str, b: &str) -> String {
+    format!("{a}__cov__{b}")
+}
+
+/// Name of the pre-exposure covariate column of a per-unit column.
+pub fn covariate_name(column: &str) -> String {
+    format!("{column}__pre")
 }
 
 #[derive(Debug, Clone)]
-pub struct RatioColumns {
-    pub metric: String,
-    pub numerator: String,
-    pub denominator: String,
+pub struct PlannedSegment {
+    pub name: String,
+    /// Column of the per-unit table holding the segment value.
+    pub column: String,
+    pub kind: PlannedSegmentKind,
+}
+
+#[derive(Debug, Clone)]
+pub enum PlannedSegmentKind {
+    /// A column of the exposure row (at first exposure).
+    Exposure { column: String },
+    /// A unit attribute: one value per unit, as of first exposure when `time` is set.
+    Attribute {
+        source: Source,
+        id: String,
+        value: Expr,
+        time: Option<String>,
+    },
 }
 
 #[derive(Debug, Clone)]
@@ -89,6 +129,8 @@ pub struct PlannedMetric {
     pub name: String,
     pub role: Role,
     pub kind: PlannedKind,
+    /// Pre-exposure covariate columns (`None` when the window is 0d).
+    pub covariate: Option<PlannedKind>,
 }
 
 #[derive(Debug, Clone)]
@@ -111,8 +153,13 @@ pub fn qualify(expr: &Expr, alias: &str) -> Expr {
     expr
 }
 
-/// Plans the readout query of one experiment.
-pub fn plan_experiment(catalog: &Catalog, experiment: ir::ExperimentId) -> ExperimentPlan {
+/// Plans the readout query of one experiment, sliced by the experiment's `segments` plus
+/// `extra_segments` (e.g. from `--by`).
+pub fn plan_experiment(
+    catalog: &Catalog,
+    experiment: ir::ExperimentId,
+    extra_segments: &[ir::SegmentId],
+) -> ExperimentPlan {
     let exp = &catalog.experiments[experiment];
     let log = &catalog.exposure_logs[exp.exposures];
     let mut plan = ExperimentPlan {
@@ -129,52 +176,136 @@ pub fn plan_experiment(catalog: &Catalog, experiment: ir::ExperimentId) -> Exper
         end: exp.end,
         scans: Vec::new(),
         columns: Vec::new(),
-        ratios: Vec::new(),
+        covariances: Vec::new(),
+        segments: Vec::new(),
         metrics: Vec::new(),
+        covariate_window: exp.covariate_window,
     };
+    let with_covariates = exp.covariate_window > 0;
     for &(id, role) in &exp.metrics {
         let metric = &catalog.metrics[id];
-        let kind = match &metric.kind {
+        let (kind, covariate) = match &metric.kind {
             MetricKind::Events { .. } => {
-                add_column(catalog, &mut plan, id);
-                PlannedKind::Mean {
-                    column: metric.name.clone(),
-                }
+                let column = add_column(catalog, &mut plan, id);
+                let covariate = with_covariates.then(|| {
+                    let pre = add_covariate(catalog, &mut plan, id);
+                    add_covariance(&mut plan, &column, &pre);
+                    PlannedKind::Mean { column: pre }
+                });
+                (PlannedKind::Mean { column }, covariate)
             }
             MetricKind::Ratio {
                 numerator,
                 denominator,
             } => {
-                add_column(catalog, &mut plan, *numerator);
-                add_column(catalog, &mut plan, *denominator);
-                let (n, d) = (
-                    catalog.metrics[*numerator].name.clone(),
-                    catalog.metrics[*denominator].name.clone(),
-                );
-                plan.ratios.push(RatioColumns {
-                    metric: metric.name.clone(),
-                    numerator: n.clone(),
-                    denominator: d.clone(),
+                let n = add_column(catalog, &mut plan, *numerator);
+                let d = add_column(catalog, &mut plan, *denominator);
+                add_covariance(&mut plan, &n, &d);
+                let covariate = with_covariates.then(|| {
+                    let np = add_covariate(catalog, &mut plan, *numerator);
+                    let dp = add_covariate(catalog, &mut plan, *denominator);
+                    // Every pair of the four columns: what CUPED on a linearised ratio needs.
+                    for (a, b) in [(&n, &np), (&n, &dp), (&d, &np), (&d, &dp), (&np, &dp)] {
+                        add_covariance(&mut plan, a, b);
+                    }
+                    PlannedKind::Ratio {
+                        numerator: np,
+                        denominator: dp,
+                    }
                 });
-                PlannedKind::Ratio {
-                    numerator: n,
-                    denominator: d,
-                }
+                (
+                    PlannedKind::Ratio {
+                        numerator: n,
+                        denominator: d,
+                    },
+                    covariate,
+                )
             }
         };
         plan.metrics.push(PlannedMetric {
             name: metric.name.clone(),
             role,
             kind,
+            covariate,
+        });
+    }
+    let mut segment_ids: Vec<ir::SegmentId> = exp.segments.clone();
+    for s in extra_segments {
+        if !segment_ids.contains(s) {
+            segment_ids.push(*s);
+        }
+    }
+    for id in segment_ids {
+        let s = &catalog.segments[id];
+        let kind = match &s.kind {
+            SegmentKind::FromExposure(column) => PlannedSegmentKind::Exposure {
+                column: column.clone(),
+            },
+            SegmentKind::Attribute {
+                source,
+                id,
+                value,
+                time,
+                ..
+            } => PlannedSegmentKind::Attribute {
+                source: source.clone(),
+                id: id.clone(),
+                value: qualify(value, SEGMENT_ALIAS),
+                time: time.clone(),
+            },
+        };
+        plan.segments.push(PlannedSegment {
+            name: s.name.clone(),
+            column: format!("segment__{}", s.name),
+            kind,
         });
     }
     plan
 }
 
-/// Adds the per-unit column of an event metric to the scan of its table (once).
-fn add_column(catalog: &Catalog, plan: &mut ExperimentPlan, metric: ir::MetricId) {
+fn add_covariance(plan: &mut ExperimentPlan, a: &str, b: &str) {
+    let name = covariance_name(a, b);
+    if !plan.covariances.iter().any(|c| c.name == name) {
+        plan.covariances.push(Covariance {
+            name,
+            a: a.to_string(),
+            b: b.to_string(),
+        });
+    }
+}
+
+/// Adds the per-unit column of an event metric to the scan of its table (once); returns its name.
+fn add_column(catalog: &Catalog, plan: &mut ExperimentPlan, metric: ir::MetricId) -> String {
     let m = &catalog.metrics[metric];
-    if plan.columns.iter().any(|c| c.column == m.name) {
+    if let MetricKind::Events { window, cap, .. } = &m.kind {
+        push_aggregate(catalog, plan, metric, m.name.clone(), *window, *cap);
+    }
+    m.name.clone()
+}
+
+/// Adds the pre-exposure covariate `[-covariate_window, 0)` of an event metric.
+fn add_covariate(catalog: &Catalog, plan: &mut ExperimentPlan, metric: ir::MetricId) -> String {
+    let m = &catalog.metrics[metric];
+    let name = covariate_name(&m.name);
+    if let MetricKind::Events { cap, .. } = &m.kind {
+        let window = ir::Window {
+            start: -plan.covariate_window,
+            end: Some(0),
+        };
+        push_aggregate(catalog, plan, metric, name.clone(), window, *cap);
+    }
+    name
+}
+
+fn push_aggregate(
+    catalog: &Catalog,
+    plan: &mut ExperimentPlan,
+    metric: ir::MetricId,
+    column: String,
+    window: ir::Window,
+    cap: Option<Cap>,
+) {
+    if plan.columns.iter().any(|c| c.column == column) {
         return;
     }
     let MetricKind::Events {
@@ -182,8 +313,8 @@ fn add_column(catalog: &Catalog, plan: &mut ExperimentPlan, metric: ir::MetricId
         aggregation,
         value,
         filter,
-        window,
-    } = &m.kind
+        ..
+    } = &catalog.metrics[metric].kind
     else {
         return;
     };
@@ -207,16 +338,17 @@ fn add_column(catalog: &Catalog, plan: &mut ExperimentPlan, metric: ir::MetricId
     let s = &mut plan.scans[scan];
     s.earliest_offset = s.earliest_offset.min(window.start);
     s.aggregates.push(Aggregate {
-        column: m.name.clone(),
+        column: column.clone(),
         aggregation: *aggregation,
-        value: value.as_ref().map(|v| qualify(v, EVENT_ALIAS)),
-        filter: filter.as_ref().map(|f| qualify(f, EVENT_ALIAS)),
-        window: *window,
+        value: value.as_deref().map(|v| qualify(v, EVENT_ALIAS)),
+        filter: filter.as_deref().map(|f| qualify(f, EVENT_ALIAS)),
+        window,
     });
     plan.columns.push(UnitColumn {
-        column: m.name.clone(),
+        column,
         scan,
         zero_fill: aggregation.zero_fill(),
+        cap,
     });
 }
 

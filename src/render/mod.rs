@@ -11,12 +11,14 @@
 //! or a bug in plumb. Every identifier and literal that comes from users goes through
 //! [`Dialect::ident`] / [`Dialect::literal`]; templates never quote by hand.
 
-use crate::ir::{Aggregation, Source};
-use crate::plan::{Aggregate, EventScan, ExperimentPlan};
+use crate::ir::{Aggregation, Cap, Source};
+use crate::plan::{Aggregate, EventScan, ExperimentPlan, PlannedSegmentKind};
 use crate::time::Timestamp;
 use minijinja::{Environment, UndefinedBehavior, context};
 use serde::{Deserialize, Serialize};
+use sqlparser::ast::{Expr, Ident, visit_expressions_mut};
 use std::collections::BTreeMap;
+use std::ops::ControlFlow;
 use std::path::{Path, PathBuf};
 
 /// Built-in dialect files, embedded at compile time: (dialect, file name, text).
@@ -36,16 +38,60 @@ const BUILTIN: &[(&str, &str, &str)] = &[
         "dialect.yaml",
         include_str!("../../dialects/duckdb/dialect.yaml"),
     ),
+    (
+        "postgres",
+        "dialect.yaml",
+        include_str!("../../dialects/postgres/dialect.yaml"),
+    ),
+    (
+        "bigquery",
+        "dialect.yaml",
+        include_str!("../../dialects/bigquery/dialect.yaml"),
+    ),
+    (
+        "snowflake",
+        "dialect.yaml",
+        include_str!("../../dialects/snowflake/dialect.yaml"),
+    ),
+    (
+        "spark",
+        "dialect.yaml",
+        include_str!("../../dialects/spark/dialect.yaml"),
+    ),
+    (
+        "trino",
+        "dialect.yaml",
+        include_str!("../../dialects/trino/dialect.yaml"),
+    ),
+    (
+        "redshift",
+        "dialect.yaml",
+        include_str!("../../dialects/redshift/dialect.yaml"),
+    ),
 ];
 
 /// Templates a dialect consists of; each falls back to the generic one.
 const TEMPLATES: &[&str] = &["experiment.sql.j2"];
 
-/// Names of the built-in dialects (the generic baseline included).
+/// Names of the built-in target dialects (the generic baseline excluded).
 pub fn builtin_dialects() -> Vec<&'static str> {
-    let mut names: Vec<&str> = BUILTIN.iter().map(|(d, _, _)| *d).collect();
+    let mut names: Vec<&str> = BUILTIN
+        .iter()
+        .map(|(d, _, _)| *d)
+        .filter(|d| *d != "generic")
+        .collect();
     names.dedup();
     names
+}
+
+/// How identifiers from the catalog are quoted.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum IdentifierQuoting {
+    /// Every identifier is quoted.
+    Always,
+    /// Plain lowercase names (`[a-z_][a-z0-9_]*`) stay bare; others are quoted.
+    WhenNeeded,
 }
 
 /// What differs between SQL engines, as data. Field docs are in `dialects/generic/dialect.yaml`.
@@ -55,10 +101,16 @@ pub struct Capabilities {
     pub name: String,
     pub sqlparser: String,
     pub identifier_quote: String,
+    pub identifier_quoting: IdentifierQuoting,
     pub float_type: String,
+    pub string_type: String,
     pub filter_clause: bool,
+    pub grouping_sets: bool,
     pub timestamp_literal: String,
     pub add_interval: String,
+    pub covar_samp: String,
+    pub percentile: String,
+    pub backslash_escapes: bool,
 }
 
 /// Partial capabilities as a dialect folder writes them.
@@ -68,10 +120,16 @@ struct CapabilitiesOverride {
     name: Option<String>,
     sqlparser: Option<String>,
     identifier_quote: Option<String>,
+    identifier_quoting: Option<IdentifierQuoting>,
     float_type: Option<String>,
+    string_type: Option<String>,
     filter_clause: Option<bool>,
+    grouping_sets: Option<bool>,
     timestamp_literal: Option<String>,
     add_interval: Option<String>,
+    covar_samp: Option<String>,
+    percentile: Option<String>,
+    backslash_escapes: Option<bool>,
 }
 
 /// A problem with a dialect's files (not with the catalog).
@@ -135,10 +193,16 @@ impl Dialect {
                 name,
                 sqlparser,
                 identifier_quote,
+                identifier_quoting,
                 float_type,
+                string_type,
                 filter_clause,
+                grouping_sets,
                 timestamp_literal,
-                add_interval
+                add_interval,
+                covar_samp,
+                percentile,
+                backslash_escapes
             );
         }
         caps.name = name.to_string();
@@ -154,15 +218,50 @@ impl Dialect {
         Ok(Dialect { caps, templates })
     }
 
-    /// Quotes an identifier, doubling any quote character inside it.
+    /// Quotes an identifier, doubling any quote character inside it. With
+    /// `identifier_quoting: when_needed`, plain lowercase names stay bare.
     pub fn ident(&self, name: &str) -> String {
+        let plain = name.starts_with(|c: char| c.is_ascii_lowercase() || c == '_')
+            && name
+                .chars()
+                .all(|c| c.is_ascii_lowercase() || c.is_ascii_digit() || c == '_');
+        if plain && self.caps.identifier_quoting == IdentifierQuoting::WhenNeeded {
+            return name.to_string();
+        }
         let q = &self.caps.identifier_quote;
         format!("{q}{}{q}", name.replace(q.as_str(), &format!("{q}{q}")))
     }
 
-    /// A string literal, with single quotes doubled.
+    /// A string literal, with single quotes doubled (and backslashes doubled for engines that
+    /// read them as escapes inside literals).
     pub fn literal(&self, value: &str) -> String {
-        format!("'{}'", value.replace('\'', "''"))
+        let v = if self.caps.backslash_escapes {
+            value.replace('\\', "\\\\")
+        } else {
+            value.to_string()
+        };
+        format!("'{}'", v.replace('\'', "''"))
+    }
+
+    /// Re-emits a user fragment for this dialect: identifiers the user quoted get this
+    /// dialect's quote character; bare ones stay bare.
+    pub fn fragment(&self, expr: &Expr) -> String {
+        let mut expr = expr.clone();
+        let quote = self.caps.identifier_quote.chars().next();
+        let requote = |ident: &mut Ident| {
+            if ident.quote_style.is_some() {
+                ident.quote_style = quote;
+            }
+        };
+        let _ = visit_expressions_mut(&mut expr, |e| {
+            match e {
+                Expr::Identifier(i) => requote(i),
+                Expr::CompoundIdentifier(parts) => parts.iter_mut().for_each(requote),
+                _ => {}
+            }
+            ControlFlow::<()>::Continue(())
+        });
+        expr.to_string()
     }
 
     fn source(&self, source: &Source) -> String {
@@ -186,7 +285,7 @@ impl Dialect {
         )
     }
 
-    /// `expr` plus `seconds`, in the largest whole unit.
+    /// `expr` plus `seconds` (possibly negative), in the largest whole unit.
     pub fn add_seconds(&self, expr: &str, seconds: i64) -> Result<String, DialectError> {
         if seconds == 0 {
             return Ok(expr.to_string());
@@ -204,9 +303,18 @@ impl Dialect {
         )
     }
 
+    fn covar_samp(&self, a: &str, b: &str) -> Result<String, DialectError> {
+        let cast = |x: &str| format!("CAST({x} AS {})", self.caps.float_type);
+        self.snippet(&self.caps.covar_samp, context! { a => cast(a), b => cast(b) })
+    }
+
+    fn percentile(&self, expr: &str, p: f64) -> Result<String, DialectError> {
+        self.snippet(&self.caps.percentile, context! { expr => expr, p => p })
+    }
+
     /// A conditional aggregate: `agg` over rows where `cond` holds.
     fn aggregate(&self, agg: &Aggregate, cond: &str) -> String {
-        let value = agg.value.as_ref().map(|v| v.to_string()).unwrap_or_default();
+        let value = agg.value.as_ref().map(|v| self.fragment(v)).unwrap_or_default();
         let f = self.caps.filter_clause;
         let count = if f {
             format!("count(*) FILTER (WHERE {cond})")
@@ -232,7 +340,7 @@ impl Dialect {
         }
     }
 
-    fn scan_aggregate(&self, scan: &EventScan, agg: &Aggregate, end: &str) -> Result<String, DialectError> {
+    fn scan_aggregate(&self, scan: &EventScan, agg: &Aggregate) -> Result<String, DialectError> {
         let t = format!("e.{}", self.ident(&scan.time));
         let mut conds = vec![format!(
             "{t} >= {}",
@@ -244,22 +352,29 @@ impl Dialect {
                 self.add_seconds("x.first_exposed_at", w_end)?
             ));
         }
-        let _ = end; // the experiment cut-off is applied once, in the scan's WHERE
+        // The experiment cut-off is applied once, in the scan's WHERE.
         if let Some(f) = &agg.filter {
-            conds.push(format!("({f})"));
+            conds.push(format!("({})", self.fragment(f)));
         }
         Ok(self.aggregate(agg, &conds.join(" AND ")))
     }
 
     /// Renders the readout query of one experiment.
     pub fn render_experiment(&self, plan: &ExperimentPlan) -> Result<String, DialectError> {
+        if !plan.segments.is_empty() && !self.caps.grouping_sets {
+            return Err(DialectError(format!(
+                "dialect {} has no GROUPING SETS, so segments cannot be computed in one statement; \
+                 run without segments or use a dialect with `grouping_sets: true`",
+                self.caps.name
+            )));
+        }
         let end = self.timestamp(plan.end)?;
         let mut scans = Vec::new();
         for scan in &plan.scans {
             let mut aggregates = Vec::new();
             for agg in &scan.aggregates {
                 aggregates.push(context! {
-                    sql => self.scan_aggregate(scan, agg, &end)?,
+                    sql => self.scan_aggregate(scan, agg)?,
                     column => self.ident(&agg.column),
                 });
             }
@@ -269,46 +384,92 @@ impl Dialect {
                 id => self.ident(&scan.id),
                 time => self.ident(&scan.time),
                 lower_bound => self.timestamp(plan.start.plus(scan.earliest_offset))?,
-                filter => scan.filter.as_ref().map(|f| f.to_string()),
+                filter => scan.filter.as_ref().map(|f| self.fragment(f)),
                 aggregates => aggregates,
             });
         }
-        let columns: Vec<_> = plan
-            .columns
-            .iter()
-            .map(|c| {
-                let scan = &plan.scans[c.scan].name;
-                let col = self.ident(&c.column);
-                let sql = if c.zero_fill {
-                    format!("coalesce({scan}.{col}, 0)")
-                } else {
-                    format!("{scan}.{col}")
-                };
-                context! {
-                    column => col,
-                    sql => sql,
-                    n => self.ident(&format!("{}__n", c.column)),
-                    mean => self.ident(&format!("{}__mean", c.column)),
-                    var => self.ident(&format!("{}__var", c.column)),
+        let mut caps = Vec::new();
+        let mut columns = Vec::new();
+        for c in &plan.columns {
+            let scan = &plan.scans[c.scan].name;
+            let col = self.ident(&c.column);
+            let sql = if c.zero_fill {
+                format!("coalesce({scan}.{col}, 0)")
+            } else {
+                format!("{scan}.{col}")
+            };
+            let capped = match c.cap {
+                None => format!("r.{col}"),
+                Some(Cap::Absolute(v)) => {
+                    format!("CASE WHEN r.{col} > {v} THEN {v} ELSE r.{col} END")
                 }
-            })
-            .collect();
-        let ratios: Vec<_> = plan
-            .ratios
-            .iter()
-            .map(|r| {
-                context! {
-                    numerator => self.ident(&r.numerator),
-                    denominator => self.ident(&r.denominator),
-                    cov => self.ident(&format!("{}__cov", r.metric)),
+                Some(Cap::Percentile(p)) => {
+                    let name = self.ident(&format!("{}__cap", c.column));
+                    caps.push(context! {
+                        name => name,
+                        sql => self.percentile(&format!("CAST({col} AS {})", self.caps.float_type), p)?,
+                    });
+                    format!("CASE WHEN r.{col} > caps.{name} THEN caps.{name} ELSE r.{col} END")
                 }
-            })
-            .collect();
+            };
+            columns.push(context! {
+                column => col,
+                sql => sql,
+                capped => capped,
+                n => self.ident(&format!("{}__n", c.column)),
+                mean => self.ident(&format!("{}__mean", c.column)),
+                var => self.ident(&format!("{}__var", c.column)),
+            });
+        }
+        let mut covariances = Vec::new();
+        for c in &plan.covariances {
+            covariances.push(context! {
+                name => self.ident(&c.name),
+                sql => self.covar_samp(&self.ident(&c.a), &self.ident(&c.b))?,
+            });
+        }
+        let mut segments = Vec::new();
+        let mut exposure_segments = Vec::new();
+        let mut attribute_segments = Vec::new();
+        for seg in &plan.segments {
+            let column = self.ident(&seg.column);
+            let sql = match &seg.kind {
+                PlannedSegmentKind::Exposure { column: source } => {
+                    exposure_segments.push(context! {
+                        column => column,
+                        source_column => self.ident(source),
+                    });
+                    format!("x.{column}")
+                }
+                PlannedSegmentKind::Attribute {
+                    source,
+                    id,
+                    value,
+                    time,
+                } => {
+                    let cte = format!("segment_{}", seg.name);
+                    attribute_segments.push(context! {
+                        cte => cte,
+                        source => self.source(source),
+                        id => self.ident(id),
+                        value => self.fragment(value),
+                        time => time.as_ref().map(|t| self.ident(t)),
+                    });
+                    format!("{cte}.segment_value")
+                }
+            };
+            segments.push(context! {
+                column => column,
+                name => self.literal(&seg.name),
+                sql => sql,
+            });
+        }
         let x = &plan.exposures;
         let ctx = context! {
             experiment => plan.experiment,
             dialect => self.caps.name,
             float_type => self.caps.float_type,
+            string_type => self.caps.string_type,
             start => self.timestamp(plan.start)?,
             end => end,
             exposures => context! {
@@ -321,22 +482,33 @@ impl Dialect {
             },
             scans => scans,
             columns => columns,
-            ratios => ratios,
+            caps => caps,
+            covariances => covariances,
+            segments => segments,
+            exposure_segments => exposure_segments,
+            attribute_segments => attribute_segments,
         };
+        self.render_template("experiment.sql.j2", ctx)
+    }
+
+    fn render_template(&self, name: &str, ctx: minijinja::Value) -> Result<String, DialectError> {
         let mut env = Environment::new();
         env.set_undefined_behavior(UndefinedBehavior::Strict);
         env.set_trim_blocks(true);
         env.set_lstrip_blocks(true);
         env.set_keep_trailing_newline(true);
-        for (name, text) in &self.templates {
-            env.add_template(name, text)
-                .map_err(|e| DialectError(format!("dialect {}: template {name}: {e}", self.caps.name)))?;
+        for (file, text) in &self.templates {
+            env.add_template(file, text)
+                .map_err(|e| DialectError(format!("dialect {}: template {file}: {e}", self.caps.name)))?;
         }
-        let tmpl = env
-            .get_template("experiment.sql.j2")
-            .map_err(|e| DialectError(e.to_string()))?;
-        tmpl.render(ctx)
-            .map_err(|e| DialectError(format!("dialect {}: experiment.sql.j2: {e}", self.caps.name)))
+        let tmpl = env.get_template(name).map_err(|e| DialectError(e.to_string()))?;
+        let mut sql = tmpl
+            .render(ctx)
+            .map_err(|e| DialectError(format!("dialect {}: {name}: {e}", self.caps.name)))?;
+        if !sql.ends_with('\n') {
+            sql.push('\n');
+        }
+        Ok(sql)
     }
 }
 

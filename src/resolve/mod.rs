@@ -214,6 +214,31 @@ impl Resolver<'_> {
         }
     }
 
+    /// `winsorize: 99.9%` (a percentile of the exposed units' values) or `winsorize: 250`.
+    fn cap(&mut self, item: &Item<syntax::Metric>, text: &str) -> Option<ir::Cap> {
+        let t = text.trim();
+        let bad = |s: &mut Self, msg: &str| {
+            s.push(
+                Diagnostic::error("E017", format!("bad `winsorize` value `{t}`: {msg}"))
+                    .at(item.value_span("winsorize"))
+                    .hint("write a percentile such as `99.9%` or an absolute cap such as `500`"),
+            );
+            None
+        };
+        if let Some(p) = t.strip_suffix('%') {
+            match p.trim().parse::<f64>() {
+                Ok(p) if p > 50.0 && p < 100.0 => Some(ir::Cap::Percentile(p / 100.0)),
+                Ok(_) => bad(self, "the percentile must be above 50% and below 100%"),
+                Err(_) => bad(self, "not a number"),
+            }
+        } else {
+            match t.parse::<f64>() {
+                Ok(c) if c.is_finite() => Some(ir::Cap::Absolute(c)),
+                _ => bad(self, "not a number or a percentage"),
+            }
+        }
+    }
+
     fn window(&mut self, item: &Item<syntax::Metric>) -> Option<Window> {
         let Some(parts) = &item.value.window else {
             return Some(Window { start: 0, end: None });
@@ -302,6 +327,7 @@ impl Resolver<'_> {
                 id: id.unwrap_or_default(),
                 time: time.unwrap_or_default(),
                 filter,
+                columns: v.columns.clone(),
             });
         }
 
@@ -418,13 +444,7 @@ impl Resolver<'_> {
                 None
             }
         };
-        if v.winsorize.is_some() {
-            self.push(
-                Diagnostic::error("E018", "`winsorize` is not supported by this version of plumb")
-                    .at(item.key_span("winsorize"))
-                    .hint("remove it for now; capping is planned and will be computed in the same query"),
-            );
-        }
+        let cap = v.winsorize.as_ref().and_then(|w| self.cap(item, &w.0));
         let mut metric = ir::Metric {
             name: v.name.clone().unwrap_or_default(),
             description: v.description.clone(),
@@ -437,7 +457,15 @@ impl Resolver<'_> {
             direction,
         };
         if let Some(parts) = &v.ratio {
-            for key in ["events", "per_unit", "of", "where", "window", "at_least"] {
+            for key in [
+                "events",
+                "per_unit",
+                "of",
+                "where",
+                "window",
+                "at_least",
+                "winsorize",
+            ] {
                 if item.node.get(key).is_some() {
                     self.push(
                         Diagnostic::error("E017", format!("a ratio metric cannot have `{key}`"))
@@ -567,12 +595,23 @@ impl Resolver<'_> {
             metric.unit = out.event_tables[t].unit;
         }
         if let (Some(table), Some(aggregation), Some(window)) = (table, aggregation, window) {
+            if cap.is_some() && matches!(aggregation, Aggregation::Any | Aggregation::AtLeast(_)) {
+                self.push(
+                    Diagnostic::error(
+                        "E017",
+                        "`winsorize` does not apply to 0/1 metrics (any, at_least)",
+                    )
+                    .at(item.key_span("winsorize"))
+                    .hint("remove `winsorize`; a 0/1 value cannot be an outlier"),
+                );
+            }
             metric.kind = MetricKind::Events {
                 table,
                 aggregation,
                 value,
                 filter,
                 window,
+                cap,
             };
         }
         metric

@@ -13,10 +13,12 @@ use std::collections::BTreeMap;
 #[derive(Debug, Clone, Default, PartialEq)]
 pub struct ArmRow {
     pub arm: String,
+    /// `None` for the overall row; `(segment name, value)` for a segment slice.
+    pub segment: Option<(String, Option<String>)>,
     pub units: u64,
     /// Per-unit column -> moments.
     pub columns: BTreeMap<String, Moments>,
-    /// Ratio metric -> covariance of its numerator and denominator.
+    /// Covariance column name (see `plan::covariance_name`) -> sample covariance.
     pub covariances: BTreeMap<String, f64>,
 }
 
@@ -40,6 +42,8 @@ pub struct ReadoutSpec {
     pub alpha: f64,
     pub start: String,
     pub end: String,
+    /// Segments sliced although the experiment did not declare them (e.g. `--by`).
+    pub exploratory_segments: Vec<String>,
 }
 
 #[derive(Debug, Clone)]
@@ -53,8 +57,15 @@ pub struct MetricSpec {
 
 #[derive(Debug, Clone)]
 pub enum MetricShape {
-    Mean { column: String },
-    Ratio { numerator: String, denominator: String },
+    Mean {
+        column: String,
+    },
+    Ratio {
+        numerator: String,
+        denominator: String,
+        /// Key of their covariance in [`ArmRow::covariances`].
+        covariance: String,
+    },
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -115,7 +126,7 @@ pub struct ResultRow {
     pub metric: String,
     pub role: &'static str,
     pub arm: String,
-    /// Always null until segments are supported; kept so rows have a stable shape.
+    /// Null for the whole experiment; the segment and its value for a slice.
     pub segment: Option<SegmentRef>,
     pub control: ArmSummary,
     pub treatment: ArmSummary,
@@ -130,7 +141,8 @@ pub struct ResultRow {
 #[derive(Debug, Clone, Serialize)]
 pub struct SegmentRef {
     pub name: String,
-    pub value: String,
+    /// Null when the unit has no value for the segment.
+    pub value: Option<String>,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -208,7 +220,7 @@ fn difference(e: &Estimate) -> DifferenceOut {
 /// Builds the readout. Pure: the same table and spec always give the same readout.
 pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
     let planned: BTreeMap<&str, f64> = spec.arms.iter().map(|(a, s)| (a.as_str(), *s)).collect();
-    let row = |arm: &str| table.rows.iter().find(|r| r.arm == arm);
+    let row = |arm: &str| table.rows.iter().find(|r| r.arm == arm && r.segment.is_none());
     let mut arms: Vec<ArmOut> = spec
         .arms
         .iter()
@@ -219,7 +231,7 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
         })
         .collect();
     let mut unknown_arm = 0;
-    for r in &table.rows {
+    for r in table.rows.iter().filter(|r| r.segment.is_none()) {
         if !planned.contains_key(r.arm.as_str()) {
             unknown_arm += r.units;
             arms.push(ArmOut {
@@ -237,6 +249,46 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
     let shares: Vec<f64> = spec.arms.iter().map(|(_, s)| *s).collect();
     let srm = super::sample_ratio(&observed, &shares);
 
+    let mut groups: Vec<Option<(String, Option<String>)>> = vec![None];
+    for r in &table.rows {
+        if r.segment.is_some() && !groups.contains(&r.segment) {
+            groups.push(r.segment.clone());
+        }
+    }
+    let mut results = Vec::new();
+    for group in &groups {
+        let rows: Vec<&ArmRow> = table.rows.iter().filter(|r| &r.segment == group).collect();
+        let segment = group.as_ref().map(|(name, value)| SegmentRef {
+            name: name.clone(),
+            value: value.clone(),
+        });
+        results.extend(metric_rows(spec, &rows, segment));
+    }
+    let excluded = Excluded {
+        multiple_arms: table.excluded_multiple_arms,
+        missing_arm: table.excluded_missing_arm,
+        unknown_arm,
+        rows_without_unit: table.excluded_rows_without_unit,
+    };
+    let cautions = cautions(spec, srm.as_ref(), &excluded, &results);
+    Readout {
+        experiment: spec.experiment.clone(),
+        control: spec.control.clone(),
+        alpha: spec.alpha,
+        start: spec.start.clone(),
+        end: spec.end.clone(),
+        arms,
+        excluded,
+        sample_ratio: srm.map(Into::into),
+        results,
+        assumptions: assumptions(spec),
+        cautions,
+    }
+}
+
+/// Result rows of every metric and non-control arm for one group of arm rows.
+fn metric_rows(spec: &ReadoutSpec, rows: &[&ArmRow], segment: Option<SegmentRef>) -> Vec<ResultRow> {
+    let row = |arm: &str| rows.iter().copied().find(|r| r.arm == arm);
     let mut results = Vec::new();
     for m in &spec.metrics {
         for (arm, _) in spec.arms.iter().skip(1) {
@@ -257,13 +309,14 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
                 MetricShape::Ratio {
                     numerator,
                     denominator,
+                    covariance,
                 } => {
                     let moments = |r: Option<&ArmRow>| -> Option<RatioMoments> {
                         let r = r?;
                         Some(RatioMoments {
                             numerator: *r.columns.get(numerator)?,
                             denominator: *r.columns.get(denominator)?,
-                            cov: *r.covariances.get(&m.name)?,
+                            cov: *r.covariances.get(covariance)?,
                         })
                     };
                     let (cm, tm) = (moments(c), moments(t));
@@ -296,7 +349,7 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
                 metric: m.name.clone(),
                 role: m.role.as_str(),
                 arm: arm.clone(),
-                segment: None,
+                segment: segment.clone(),
                 control,
                 treatment,
                 difference: diff.as_ref().map(difference),
@@ -310,27 +363,7 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
             });
         }
     }
-
-    let excluded = Excluded {
-        multiple_arms: table.excluded_multiple_arms,
-        missing_arm: table.excluded_missing_arm,
-        unknown_arm,
-        rows_without_unit: table.excluded_rows_without_unit,
-    };
-    let cautions = cautions(spec, srm.as_ref(), &excluded, &results);
-    Readout {
-        experiment: spec.experiment.clone(),
-        control: spec.control.clone(),
-        alpha: spec.alpha,
-        start: spec.start.clone(),
-        end: spec.end.clone(),
-        arms,
-        excluded,
-        sample_ratio: srm.map(Into::into),
-        results,
-        assumptions: assumptions(spec),
-        cautions,
-    }
+    results
 }
 
 fn assumptions(spec: &ReadoutSpec) -> Vec<String> {
@@ -387,6 +420,15 @@ fn cautions(
             "{} exposure rows had no unit key and were ignored.",
             ex.rows_without_unit
         ));
+    }
+    if !spec.exploratory_segments.is_empty() {
+        out.push(format!(
+            "Segments {} were chosen after the fact (not declared on the experiment): their rows are exploratory; confirm any finding in a new experiment.",
+            spec.exploratory_segments.join(", ")
+        ));
+    }
+    if results.iter().any(|r| r.segment.is_some()) {
+        out.push("Segment rows slice the same units many ways: expect some to differ by chance, and read them as a drill-down, not as separate results.".into());
     }
     let comparisons = results
         .iter()
