@@ -179,6 +179,7 @@ pub const KINDS: &[(&str, &[&str])] = &[
             "id",
             "time",
             "where",
+            "columns",
         ],
     ),
     (

@@ -219,12 +219,16 @@ impl Dialect {
     }
 
     /// Quotes an identifier, doubling any quote character inside it. With
-    /// `identifier_quoting: when_needed`, plain lowercase names stay bare.
+    /// `identifier_quoting: when_needed`, plain lowercase names that are not SQL keywords stay
+    /// bare.
     pub fn ident(&self, name: &str) -> String {
         let plain = name.starts_with(|c: char| c.is_ascii_lowercase() || c == '_')
             && name
                 .chars()
-                .all(|c| c.is_ascii_lowercase() || c.is_ascii_digit() || c == '_');
+                .all(|c| c.is_ascii_lowercase() || c.is_ascii_digit() || c == '_')
+            && sqlparser::keywords::ALL_KEYWORDS
+                .binary_search(&name.to_ascii_uppercase().as_str())
+                .is_err();
         if plain && self.caps.identifier_quoting == IdentifierQuoting::WhenNeeded {
             return name.to_string();
         }
@@ -521,6 +525,14 @@ mod tests {
         let d = Dialect::load("duckdb", None).unwrap();
         assert_eq!(d.ident(r#"a"; drop table x; --"#), r#""a""; drop table x; --""#);
         assert_eq!(d.literal("it's"), "'it''s'");
+    }
+
+    #[test]
+    fn bare_names_only_when_safe() {
+        let d = Dialect::load("snowflake", None).unwrap();
+        assert_eq!(d.ident("shopper_id"), "shopper_id");
+        assert_eq!(d.ident("at"), "\"at\"", "keywords are quoted");
+        assert_eq!(d.ident("Region"), "\"Region\"");
     }
 
     #[test]

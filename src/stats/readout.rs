@@ -432,7 +432,7 @@ fn cautions(
     }
     let comparisons = results
         .iter()
-        .filter(|r| r.difference.as_ref().is_some_and(|d| d.p_value.is_some()))
+        .filter(|r| r.segment.is_none() && r.difference.as_ref().is_some_and(|d| d.p_value.is_some()))
         .count();
     if comparisons > 1 {
         out.push(format!(
