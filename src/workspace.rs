@@ -9,6 +9,7 @@ use crate::ir;
 use crate::load::{self, LoadError, yaml::Seg};
 use crate::resolve;
 use crate::source::SourceMap;
+use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
 #[derive(Debug)]
@@ -29,11 +30,42 @@ pub enum Opened {
     Invalid(Vec<Diagnostic>),
 }
 
+/// Schemas of the local tables, when the engine is built in and the data can be opened; an
+/// empty map otherwise (fragments are then checked against declared `columns:` only).
+#[cfg(feature = "engine")]
+fn local_schemas(ws: &load::RawWorkspace) -> BTreeMap<String, Vec<String>> {
+    let local = ws.value.local.clone().unwrap_or_default();
+    let database = local
+        .database
+        .as_ref()
+        .map(|p| ws.root.join(p))
+        .filter(|p| p.is_file());
+    let tables: Vec<(String, PathBuf)> = local
+        .tables
+        .map(|t| {
+            t.0.into_iter()
+                .map(|(n, p)| (n, ws.root.join(p)))
+                .filter(|(_, p)| p.is_file())
+                .collect()
+        })
+        .unwrap_or_default();
+    if database.is_none() && tables.is_empty() {
+        return BTreeMap::new();
+    }
+    crate::execute::duckdb::local_schemas(database.as_deref(), &tables).unwrap_or_default()
+}
+
+#[cfg(not(feature = "engine"))]
+fn local_schemas(_: &load::RawWorkspace) -> BTreeMap<String, Vec<String>> {
+    BTreeMap::new()
+}
+
 /// Loads and resolves the workspace in `dir`.
 pub fn open(dir: &Path, sources: &mut SourceMap) -> Result<Opened, LoadError> {
     let (raw_ws, raw_catalog, mut diags) = load::load_workspace(dir, sources)?;
     let files = sources.files().count().saturating_sub(1);
-    let catalog = match resolve::resolve(sources, &raw_catalog) {
+    let schemas = local_schemas(&raw_ws);
+    let catalog = match resolve::resolve_with_schemas(sources, &raw_catalog, &schemas) {
         Ok(c) => Some(c),
         Err(more) => {
             diags.extend(more);

@@ -68,17 +68,40 @@ impl Engine {
                 )));
             }
         };
+        let context = format!("reading local table `{name}` from {}", path.display());
         self.conn
             .execute_batch(&format!(
                 "CREATE OR REPLACE TEMP VIEW {} AS SELECT * FROM {reader}",
                 ident(name)
             ))
-            .map_err(|e| {
-                err(
-                    &format!("reading local table `{name}` from {}", path.display()),
-                    e,
-                )
+            .map_err(|e| err(&context, e))?;
+        // Timestamps with a zone become UTC timestamps without one, so that windows and the
+        // experiment's (UTC) boundaries compare the same instants whatever the offsets written.
+        let zoned: Vec<String> = self
+            .query(&format!(
+                "SELECT column_name FROM (DESCRIBE SELECT * FROM {}) WHERE column_type = 'TIMESTAMP WITH TIME ZONE'",
+                ident(name)
+            ))?
+            .into_iter()
+            .filter_map(|r| match r.get("column_name") {
+                Some(Cell::Text(c)) => Some(c.clone()),
+                _ => None,
             })
+            .collect();
+        if !zoned.is_empty() {
+            let replace: Vec<String> = zoned
+                .iter()
+                .map(|c| format!("CAST({} AS TIMESTAMP) AS {}", ident(c), ident(c)))
+                .collect();
+            self.conn
+                .execute_batch(&format!(
+                    "CREATE OR REPLACE TEMP VIEW {} AS SELECT * REPLACE ({}) FROM {reader}",
+                    ident(name),
+                    replace.join(", ")
+                ))
+                .map_err(|e| err(&context, e))?;
+        }
+        Ok(())
     }
 
     /// Runs one statement and returns its rows by column name.
@@ -128,4 +151,26 @@ fn cell(v: Value) -> Result<Cell, String> {
         Value::Text(t) => Cell::Text(t),
         other => return Err(format!("unexpected value type {other:?}")),
     })
+}
+
+/// Column names of every local table (CSV/Parquet views and tables of the local database),
+/// keyed by table name, so the resolver can check SQL fragments against real schemas.
+pub fn local_schemas(
+    database: Option<&Path>,
+    tables: &[(String, std::path::PathBuf)],
+) -> Result<std::collections::BTreeMap<String, Vec<String>>, ExecuteError> {
+    let engine = Engine::open(database, tables)?;
+    let rows = engine.query(
+        "SELECT table_name, column_name FROM information_schema.columns \
+         ORDER BY table_name, ordinal_position",
+    )?;
+    let mut out: std::collections::BTreeMap<String, Vec<String>> = Default::default();
+    for row in rows {
+        if let (Some(super::Cell::Text(t)), Some(super::Cell::Text(c))) =
+            (row.get("table_name"), row.get("column_name"))
+        {
+            out.entry(t.clone()).or_default().push(c.clone());
+        }
+    }
+    Ok(out)
 }

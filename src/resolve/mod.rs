@@ -17,16 +17,40 @@ use std::collections::BTreeMap;
 
 /// Resolves a loaded catalog. `Err` holds every error found (at least one).
 pub fn resolve(sources: &SourceMap, raw: &RawCatalog) -> Result<ir::Catalog, Vec<Diagnostic>> {
+    resolve_with_schemas(sources, raw, &BTreeMap::new())
+}
+
+/// Like [`resolve`], also checking SQL fragments against known table schemas: `schemas` maps a
+/// table name (as written in `table:`) to its columns, e.g. read from local data. An event
+/// table's own `columns:` list takes precedence.
+pub fn resolve_with_schemas(
+    sources: &SourceMap,
+    raw: &RawCatalog,
+    schemas: &BTreeMap<String, Vec<String>>,
+) -> Result<ir::Catalog, Vec<Diagnostic>> {
     let mut r = Resolver {
         sources,
         diags: Vec::new(),
     };
     let catalog = r.catalog(raw);
+    r.check_columns(raw, &catalog, schemas);
     if r.diags.iter().any(Diagnostic::is_error) {
         Err(r.diags)
     } else {
         Ok(catalog)
     }
+}
+
+/// Bare column names an expression refers to.
+fn column_refs(expr: &sqlparser::ast::Expr) -> Vec<String> {
+    let mut out = Vec::new();
+    let _ = sqlparser::ast::visit_expressions(expr, |e| {
+        if let sqlparser::ast::Expr::Identifier(i) = e {
+            out.push(i.value.clone());
+        }
+        std::ops::ControlFlow::<()>::Continue(())
+    });
+    out
 }
 
 struct Resolver<'a> {
@@ -44,6 +68,98 @@ fn is_snake_case(name: &str) -> bool {
 }
 
 impl Resolver<'_> {
+    /// Checks every column a fragment, `id` or `time` names against the table's known columns.
+    fn check_columns(
+        &mut self,
+        raw: &RawCatalog,
+        catalog: &ir::Catalog,
+        schemas: &BTreeMap<String, Vec<String>>,
+    ) {
+        if self.diags.iter().any(Diagnostic::is_error) {
+            return;
+        }
+        for (t, item) in raw.event_tables.iter().enumerate() {
+            let table = &catalog.event_tables[t];
+            let known: Option<Vec<String>> = table.columns.clone().or_else(|| match &table.source {
+                Source::Table(parts) => schemas.get(&parts.join(".")).cloned(),
+                Source::Query(_) => None,
+            });
+            let Some(known) = known else { continue };
+            let lower: Vec<String> = known.iter().map(|c| c.to_ascii_lowercase()).collect();
+            let check = |s: &mut Self, name: &str, span: Option<Span>, what: &str| {
+                if lower.contains(&name.to_ascii_lowercase()) {
+                    return;
+                }
+                let mut d = Diagnostic::error(
+                    "E021",
+                    format!("unknown column `{name}` in {what} (event table `{}`)", table.name),
+                )
+                .at(span);
+                d = d.hint(
+                    did_you_mean(name, known.iter().map(String::as_str))
+                        .unwrap_or_else(|| format!("columns of `{}`: {}", table.name, known.join(", "))),
+                );
+                s.push(d);
+            };
+            check(self, &table.id, item.value_span("id"), "`id`");
+            check(self, &table.time, item.value_span("time"), "`time`");
+            if let Some(f) = &table.filter {
+                for c in column_refs(f) {
+                    let span = self.word_span(item, "where", &c);
+                    check(self, &c, span, "`where`");
+                }
+            }
+            for (m, mitem) in raw.metrics.iter().enumerate() {
+                let MetricKind::Events {
+                    table: mt,
+                    value,
+                    filter,
+                    ..
+                } = &catalog.metrics[m].kind
+                else {
+                    continue;
+                };
+                if *mt != t {
+                    continue;
+                }
+                for (key, expr) in [("of", value), ("where", filter)] {
+                    for c in expr.iter().flat_map(|e| column_refs(e)) {
+                        let span = self.word_span(mitem, key, &c);
+                        check(
+                            self,
+                            &c,
+                            span,
+                            &format!("`{key}` of metric `{}`", catalog.metrics[m].name),
+                        );
+                    }
+                }
+            }
+        }
+    }
+
+    /// Span of `word` inside the value of `key`, or the whole value.
+    fn word_span<T>(&self, item: &Item<T>, key: &str, word: &str) -> Option<Span> {
+        let whole = item.value_span(key)?;
+        let text = &self.sources.get(whole.file).text[whole.range.clone()];
+        let bytes = text.as_bytes();
+        let mut from = 0;
+        while let Some(i) = text[from..].find(word) {
+            let start = from + i;
+            let end = start + word.len();
+            let before =
+                start == 0 || !(bytes[start - 1].is_ascii_alphanumeric() || bytes[start - 1] == b'_');
+            let after = end >= bytes.len() || !(bytes[end].is_ascii_alphanumeric() || bytes[end] == b'_');
+            if before && after {
+                return Some(Span::new(
+                    whole.file,
+                    whole.range.start + start..whole.range.start + end,
+                ));
+            }
+            from = end;
+        }
+        Some(whole)
+    }
+
     fn push(&mut self, d: Diagnostic) {
         self.diags.push(d);
     }
