@@ -147,6 +147,8 @@ impl std::fmt::Display for DialectError {
 pub struct Dialect {
     pub caps: Capabilities,
     templates: BTreeMap<String, String>,
+    /// The capability snippets, compiled once.
+    snippets: Environment<'static>,
 }
 
 fn read_file(user_dir: Option<&Path>, dialect: &str, file: &str) -> Result<Option<String>, DialectError> {
@@ -215,7 +217,23 @@ impl Dialect {
             };
             templates.insert(file.to_string(), text);
         }
-        Ok(Dialect { caps, templates })
+        let mut snippets = Environment::new();
+        snippets.set_undefined_behavior(UndefinedBehavior::Strict);
+        for (key, text) in [
+            ("timestamp_literal", &caps.timestamp_literal),
+            ("add_interval", &caps.add_interval),
+            ("covar_samp", &caps.covar_samp),
+            ("percentile", &caps.percentile),
+        ] {
+            snippets
+                .add_template_owned(key, text.clone())
+                .map_err(|e| DialectError(format!("dialect {name}: capability `{key}`: {e}")))?;
+        }
+        Ok(Dialect {
+            caps,
+            templates,
+            snippets,
+        })
     }
 
     /// Quotes an identifier, doubling any quote character inside it. With
@@ -275,18 +293,16 @@ impl Dialect {
         }
     }
 
-    fn snippet(&self, template: &str, ctx: minijinja::Value) -> Result<String, DialectError> {
-        let mut env = Environment::new();
-        env.set_undefined_behavior(UndefinedBehavior::Strict);
-        env.render_str(template, ctx)
-            .map_err(|e| DialectError(format!("dialect {}: {e}", self.caps.name)))
+    /// Renders the capability snippet `key` (compiled once, in [`Dialect::load`]).
+    fn snippet(&self, key: &str, ctx: minijinja::Value) -> Result<String, DialectError> {
+        self.snippets
+            .get_template(key)
+            .and_then(|t| t.render(ctx))
+            .map_err(|e| DialectError(format!("dialect {}: capability `{key}`: {e}", self.caps.name)))
     }
 
     pub fn timestamp(&self, ts: Timestamp) -> Result<String, DialectError> {
-        self.snippet(
-            &self.caps.timestamp_literal,
-            context! { ts => ts.to_sql_string() },
-        )
+        self.snippet("timestamp_literal", context! { ts => ts.to_sql_string() })
     }
 
     /// `expr` plus `seconds` (possibly negative), in the largest whole unit.
@@ -301,19 +317,16 @@ impl Dialect {
         } else {
             (seconds, "second")
         };
-        self.snippet(
-            &self.caps.add_interval,
-            context! { expr => expr, n => n, unit => unit },
-        )
+        self.snippet("add_interval", context! { expr => expr, n => n, unit => unit })
     }
 
     fn covar_samp(&self, a: &str, b: &str) -> Result<String, DialectError> {
         let cast = |x: &str| format!("CAST({x} AS {})", self.caps.float_type);
-        self.snippet(&self.caps.covar_samp, context! { a => cast(a), b => cast(b) })
+        self.snippet("covar_samp", context! { a => cast(a), b => cast(b) })
     }
 
     fn percentile(&self, expr: &str, p: f64) -> Result<String, DialectError> {
-        self.snippet(&self.caps.percentile, context! { expr => expr, p => p })
+        self.snippet("percentile", context! { expr => expr, p => p })
     }
 
     /// A conditional aggregate: `agg` over rows where `cond` holds.
