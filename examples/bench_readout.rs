@@ -11,8 +11,17 @@ use std::time::{Duration, Instant};
 const START: &str = "2026-03-01 00:00:00";
 const END: &str = "2026-03-15 00:00:00";
 
-/// (name, table, per_unit, of, where, window days)
-const METRICS: &[(&str, &str, &str, &str, &str, Option<u32>)] = &[
+/// A metric of the benchmark: (name, table, per_unit, of, where, window days).
+type MetricDef = (
+    &'static str,
+    &'static str,
+    &'static str,
+    &'static str,
+    &'static str,
+    Option<u32>,
+);
+
+const METRICS: &[MetricDef] = &[
     ("orders", "orders", "count", "", "status = 'paid'", None),
     ("refunds", "orders", "count", "", "status = 'refunded'", None),
     ("revenue", "orders", "sum", "amount", "status = 'paid'", None),

@@ -175,3 +175,158 @@ fn ratio_metric_delta_method_derived() {
     assert_close(r.estimate, 0.1944444444, 5e-11, "relative");
     assert_close(r.se, 0.1400938559, 5e-11, "relative SE");
 }
+
+/// R `prop.test(x = c(490, 400), n = c(500, 500))`: with Yates' correction X-squared = 80.909
+/// and CI (0.1408536, 0.2191464); without it the pooled z = 9.0960 (z² = 82.737) and the Wald
+/// CI is (0.1428536, 0.2171464).
+#[test]
+fn two_proportions_match_r_prop_test() {
+    let wald = stats::two_proportions(490, 500, 400, 500, 0.05, false).unwrap();
+    assert_close(wald.ci_low, 0.1428536, 5e-8, "Wald low");
+    assert_close(wald.ci_high, 0.2171464, 5e-8, "Wald high");
+    let z = stats::pooled_z(490, 500, 400, 500);
+    assert_close(z, 9.0960, 5e-5, "pooled z");
+    assert_close(z * z, 82.737, 5e-4, "z²");
+    let yates = stats::two_proportions(490, 500, 400, 500, 0.05, true).unwrap();
+    assert_close(yates.ci_low, 0.1408536, 5e-8, "Yates low");
+    assert_close(yates.ci_high, 0.2191464, 5e-8, "Yates high");
+    // X-squared with Yates' correction is the square of the corrected pooled z.
+    let se0 = ((890.0 / 1000.0) * (110.0 / 1000.0) * (2.0 / 500.0f64)).sqrt();
+    assert_close(((0.18 - 0.002) / se0).powi(2), 80.909, 5e-4, "X-squared (Yates)");
+}
+
+/// Pooled two-proportion z test, 118/3303 vs 80/3303: z = 2.74195, two-sided p = 0.00611
+/// (worked answer, usablestats AskStats #866).
+#[test]
+fn pooled_z_matches_worked_example() {
+    assert_close(stats::pooled_z(118, 3303, 80, 3303), 2.74195, 5e-6, "z");
+    let e = stats::two_proportions(118, 3303, 80, 3303, 0.05, false).unwrap();
+    assert_close(e.p_value.unwrap(), 0.00611, 5e-6, "p");
+}
+
+fn bh_pvalues() -> Vec<f64> {
+    column("bh1995_pvalues.csv")
+}
+
+/// Benjamini & Hochberg (1995), JRSS-B 57(1), §4 example: at q = 0.05 BH rejects 4 of the 15
+/// hypotheses; adjusted p-values as R's p.adjust(method = "BH").
+#[test]
+fn benjamini_hochberg_matches_the_1995_example() {
+    let adj = stats::multiple::benjamini_hochberg(&bh_pvalues());
+    let want = [
+        0.0015, 0.003, 0.0095, 0.035625, 0.0603, 0.063857, 0.063857, 0.0645, 0.0765, 0.486, 0.581182,
+        0.714875, 0.753231, 0.813214, 1.0,
+    ];
+    for (i, (g, w)) in adj.iter().zip(want).enumerate() {
+        assert_close(*g, w, 5e-7, &format!("BH adjusted p #{}", i + 1));
+    }
+    assert_eq!(adj.iter().filter(|p| **p <= 0.05).count(), 4);
+}
+
+/// Holm on the same 15 p-values (shared REFERENCES.md; R p.adjust(method = "holm")): rejects 3.
+#[test]
+fn holm_matches_the_1995_example() {
+    let adj = stats::multiple::holm(&bh_pvalues());
+    let want = [0.0015, 0.0056, 0.0247, 0.114, 0.2211, 0.278, 0.278, 0.278, 0.3213];
+    for (i, (g, w)) in adj.iter().zip(want).enumerate() {
+        assert_close(*g, w, 5e-5, &format!("Holm adjusted p #{}", i + 1));
+    }
+    assert!(adj[9..].iter().all(|p| *p == 1.0));
+    assert_eq!(adj.iter().filter(|p| **p <= 0.05).count(), 3);
+}
+
+/// Lehr's rule (van Belle, "Statistical Rules of Thumb", ch. 2): n ≈ 16/Δ² per group for
+/// two-sided α = 0.05 and power 0.80; the exact normal multiplier 2(z.975 + z.80)² = 15.6978
+/// gives 62.79 per group at Δ = 0.5. Binary outcomes p1 = 0.1, p2 = 0.3: 16·p̄(1−p̄)/(p1−p2)² = 64.
+#[test]
+fn sample_size_matches_lehrs_rule() {
+    let per_group = stats::power::total_units(0.5, 1.0, 0.05, 0.8, 0.5) / 2.0;
+    assert_close(per_group, 62.79, 5e-3, "n per group at Δ = 0.5");
+    assert_close(per_group * 0.25, 15.6978, 5e-4, "multiplier");
+    let pbar: f64 = 0.2;
+    assert_close(
+        16.0 * pbar * (1.0 - pbar) / 0.04,
+        64.0,
+        1e-12,
+        "Lehr, binary (rule of thumb)",
+    );
+    let exact = stats::power::total_units(0.2, (pbar * (1.0 - pbar)).sqrt(), 0.05, 0.8, 0.5) / 2.0;
+    assert!(
+        (exact - 64.0).abs() < 2.0,
+        "normal-approximation n {exact} vs Lehr's 64"
+    );
+}
+
+/// Cohen (1988), two-sample t table, two-sided α = .05, power .80: d = 0.2 / 0.5 / 0.8 need
+/// 393 / 64 / 26 per group (the table uses approximations: ±2 at d = 0.2, ±1 otherwise).
+#[test]
+fn sample_size_matches_cohens_table() {
+    for (d, want, tol) in [(0.2, 393.0, 2.0), (0.5, 64.0, 1.0), (0.8, 26.0, 1.0)] {
+        let n = stats::power::n_t_two_sample(d, 0.05, 0.8).ceil();
+        assert!((n - want).abs() <= tol, "d = {d}: n = {n}, Cohen {want}");
+    }
+}
+
+/// R `power.t.test(n = 20, delta = 1, sd = 1)`: power = 0.8689528;
+/// `power.t.test(power = .90, delta = 1)`: n = 22.02110.
+#[test]
+fn t_test_power_matches_r_power_t_test() {
+    assert_close(
+        stats::power::power_t_two_sample(20.0, 1.0, 0.05),
+        0.8689528,
+        5e-7,
+        "power",
+    );
+    assert_close(stats::power::n_t_two_sample(1.0, 0.05, 0.9), 22.02110, 5e-5, "n");
+}
+
+fn cuped_arms() -> Vec<stats::cuped::Paired> {
+    let (_, rows) = read_csv("derived_cuped.csv");
+    ["control", "treatment"]
+        .iter()
+        .map(|arm| {
+            let pick = |i: usize| -> Vec<f64> {
+                rows.iter()
+                    .filter(|r| r[0] == *arm)
+                    .map(|r| r[i].parse().unwrap())
+                    .collect()
+            };
+            let (x, y) = (pick(2), pick(3));
+            let (mx, my) = (Moments::from_values(&x), Moments::from_values(&y));
+            let cov = x
+                .iter()
+                .zip(&y)
+                .map(|(a, b)| (a - mx.mean) * (b - my.mean))
+                .sum::<f64>()
+                / (x.len() as f64 - 1.0);
+            stats::cuped::Paired { y: my, x: mx, cov }
+        })
+        .collect()
+}
+
+/// CUPED (Deng, Xu, Kohavi & Walker 2013, WSDM), derived values from shared REFERENCES.md
+/// (no published example): θ pooled over both arms = 1.0592885375; raw difference 1.0 (Welch
+/// SE 1.0739335796); CUPED difference 1.1059288538 (SE 0.1921614492). With θ equal to the
+/// within-arm (ANCOVA) slope, the difference equals the OLS treatment coefficient 1.1065536723.
+#[test]
+fn cuped_matches_derived_values() {
+    let arms = cuped_arms();
+    let theta = stats::cuped::pooled_theta(&arms).unwrap();
+    assert_close(theta, 1.0592885375, 5e-11, "θ");
+    let raw = stats::welch(&arms[0].y, &arms[1].y, 0.05).unwrap();
+    assert_close(raw.estimate, 1.0, 1e-12, "raw difference");
+    assert_close(raw.se, 1.0739335796, 5e-11, "raw SE");
+    let mx = stats::cuped::pooled_x_mean(&arms);
+    let (c, t) = (
+        stats::cuped::adjust(&arms[0], theta, mx),
+        stats::cuped::adjust(&arms[1], theta, mx),
+    );
+    let adj = stats::welch(&c, &t, 0.05).unwrap();
+    assert_close(adj.estimate, 1.1059288538, 5e-11, "CUPED difference");
+    assert_close(adj.se, 0.1921614492, 5e-11, "CUPED SE");
+    // Identity: with the within-arm slope the difference is the ANCOVA coefficient.
+    let within = arms.iter().map(|a| (a.y.n as f64 - 1.0) * a.cov).sum::<f64>()
+        / arms.iter().map(|a| (a.y.n as f64 - 1.0) * a.x.var).sum::<f64>();
+    let d = (arms[1].y.mean - arms[0].y.mean) - within * (arms[1].x.mean - arms[0].x.mean);
+    assert_close(d, 1.1065536723, 5e-11, "ANCOVA identity");
+}

@@ -119,7 +119,7 @@ pub enum PlannedSegmentKind {
     Attribute {
         source: Source,
         id: String,
-        value: Expr,
+        value: Box<Expr>,
         time: Option<String>,
     },
 }
@@ -250,7 +250,7 @@ pub fn plan_experiment(
             } => PlannedSegmentKind::Attribute {
                 source: source.clone(),
                 id: id.clone(),
-                value: qualify(value, SEGMENT_ALIAS),
+                value: Box::new(qualify(value, SEGMENT_ALIAS)),
                 time: time.clone(),
             },
         };

@@ -4,7 +4,11 @@
 //! warehouse returns), the outputs are estimates with intervals and p-values. Each formula
 //! cites its source beside it. Distributions come from `statrs`.
 
+pub mod cuped;
+pub mod multiple;
+pub mod power;
 pub mod readout;
+pub mod sequential;
 
 use statrs::distribution::{ChiSquared, ContinuousCDF, Normal, StudentsT};
 
@@ -231,6 +235,49 @@ pub fn sample_ratio(observed: &[u64], shares: &[f64]) -> Option<SampleRatio> {
         p_value,
         mismatch: p_value < SRM_THRESHOLD,
     })
+}
+
+/// Difference of two proportions x₁/n₁ − x₂/n₂: the Wald interval (unpooled SE) and the
+/// two-sided p-value of the pooled z test — R's `prop.test(correct = FALSE)` (Agresti,
+/// "Categorical Data Analysis", §3.1). `continuity` widens the interval by ½(1/n₁ + 1/n₂) and
+/// applies Yates' correction to the test, as R's default `prop.test` does.
+pub fn two_proportions(x1: u64, n1: u64, x2: u64, n2: u64, alpha: f64, continuity: bool) -> Option<Estimate> {
+    if n1 == 0 || n2 == 0 {
+        return None;
+    }
+    let (n1f, n2f) = (n1 as f64, n2 as f64);
+    let (p1, p2) = (x1 as f64 / n1f, x2 as f64 / n2f);
+    let d = p1 - p2;
+    let se = (p1 * (1.0 - p1) / n1f + p2 * (1.0 - p2) / n2f).sqrt();
+    let pooled = (x1 + x2) as f64 / (n1f + n2f);
+    let se0 = (pooled * (1.0 - pooled) * (1.0 / n1f + 1.0 / n2f)).sqrt();
+    let cc = if continuity {
+        0.5 * (1.0 / n1f + 1.0 / n2f)
+    } else {
+        0.0
+    };
+    let z_crit = z_quantile(1.0 - alpha / 2.0);
+    let p_value = if se0 > 0.0 {
+        let z = ((d.abs() - cc).max(0.0)) / se0;
+        Some((2.0 * Normal::new(0.0, 1.0).ok()?.cdf(-z)).clamp(0.0, 1.0))
+    } else {
+        None
+    };
+    Some(Estimate {
+        estimate: d,
+        se,
+        ci_low: (d - z_crit * se - cc).max(-1.0),
+        ci_high: (d + z_crit * se + cc).min(1.0),
+        p_value,
+        df: f64::INFINITY,
+    })
+}
+
+/// The pooled z statistic of two proportions (no continuity correction).
+pub fn pooled_z(x1: u64, n1: u64, x2: u64, n2: u64) -> f64 {
+    let (n1f, n2f) = (n1 as f64, n2 as f64);
+    let pooled = (x1 + x2) as f64 / (n1f + n2f);
+    (x1 as f64 / n1f - x2 as f64 / n2f) / (pooled * (1.0 - pooled) * (1.0 / n1f + 1.0 / n2f)).sqrt()
 }
 
 #[cfg(test)]

@@ -1,0 +1,77 @@
+//! Power, minimum detectable effect and sample size for two-sample comparisons.
+//!
+//! Normal approximation (e.g. van Belle, "Statistical Rules of Thumb", ch. 2; Lehr's rule
+//! n ≈ 16/Δ² per group is its rounding): with allocation shares q and 1 − q of N units,
+//! SE(Δ̂) = σ·sqrt(1/(qN) + 1/((1−q)N)); power = Φ(|δ|/SE − z₁₋α/₂) + Φ(−|δ|/SE − z₁₋α/₂);
+//! MDE = (z₁₋α/₂ + z_power)·SE. For small samples the exact two-sample t power uses the
+//! noncentral t distribution (as R's `power.t.test`), computed here by numerical integration.
+
+use super::z_quantile;
+use statrs::distribution::{ChiSquared, Continuous, ContinuousCDF, Normal, StudentsT};
+
+fn phi(x: f64) -> f64 {
+    Normal::new(0.0, 1.0).expect("standard normal").cdf(x)
+}
+
+/// Minimum detectable effect (absolute) for a comparison with standard error `se`.
+pub fn mde(se: f64, alpha: f64, power: f64) -> f64 {
+    (z_quantile(1.0 - alpha / 2.0) + z_quantile(power)) * se
+}
+
+/// Power of a two-sided z test to detect an effect `delta` when the estimate has SE `se`.
+pub fn power_normal(delta: f64, se: f64, alpha: f64) -> f64 {
+    let z = z_quantile(1.0 - alpha / 2.0);
+    let s = delta.abs() / se;
+    phi(s - z) + phi(-s - z)
+}
+
+/// Total units N needed so that a difference `delta` in a metric with sd `sd` is detected
+/// with `power`, when a share `q` of units is in the treatment arm (0 < q < 1).
+pub fn total_units(delta: f64, sd: f64, alpha: f64, power: f64, q: f64) -> f64 {
+    let k = z_quantile(1.0 - alpha / 2.0) + z_quantile(power);
+    (k * sd / delta).powi(2) * (1.0 / q + 1.0 / (1.0 - q))
+}
+
+/// P(T > t) for a noncentral t with `df` degrees of freedom and noncentrality `ncp`:
+/// T = (Z + ncp)/sqrt(V/df), V ~ χ²(df), so P(T > t) = E_V[ Φ(ncp − t·sqrt(V/df)) ],
+/// integrated over the χ² density with composite Simpson's rule on its bulk.
+pub fn noncentral_t_sf(t: f64, df: f64, ncp: f64) -> f64 {
+    let chi = ChiSquared::new(df).expect("df > 0");
+    let lo = chi.inverse_cdf(1e-12);
+    let hi = chi.inverse_cdf(1.0 - 1e-12);
+    let steps = 4000;
+    let h = (hi - lo) / steps as f64;
+    let f = |v: f64| chi.pdf(v) * phi(ncp - t * (v / df).sqrt());
+    let mut sum = f(lo) + f(hi);
+    for i in 1..steps {
+        let v = lo + i as f64 * h;
+        sum += if i % 2 == 1 { 4.0 } else { 2.0 } * f(v);
+    }
+    sum * h / 3.0
+}
+
+/// Exact power of the two-sided, two-sample t test with `n` units per group (equal sizes),
+/// standardized effect `d` = δ/σ (R: `power.t.test(n, delta, sd)`).
+pub fn power_t_two_sample(n: f64, d: f64, alpha: f64) -> f64 {
+    let df = 2.0 * (n - 1.0);
+    let ncp = d * (n / 2.0).sqrt();
+    let crit = StudentsT::new(0.0, 1.0, df)
+        .expect("df > 0")
+        .inverse_cdf(1.0 - alpha / 2.0);
+    noncentral_t_sf(crit, df, ncp) + (1.0 - noncentral_t_sf(-crit, df, ncp))
+}
+
+/// Units per group for the two-sided two-sample t test to reach `power` (continuous n, as R's
+/// `power.t.test(power = ..., delta = d)` reports it), by bisection.
+pub fn n_t_two_sample(d: f64, alpha: f64, power: f64) -> f64 {
+    let (mut lo, mut hi) = (2.0, 1e7);
+    for _ in 0..200 {
+        let mid = 0.5 * (lo + hi);
+        if power_t_two_sample(mid, d, alpha) < power {
+            lo = mid;
+        } else {
+            hi = mid;
+        }
+    }
+    0.5 * (lo + hi)
+}
