@@ -165,6 +165,8 @@ pub struct Metric {
     pub unit: UnitId,
     pub kind: MetricKind,
     pub direction: Option<Direction>,
+    /// Declared minimum detectable effect, relative (`mde: 2%` -> 0.02).
+    pub mde: Option<f64>,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
@@ -206,4 +208,6 @@ pub struct Experiment {
     pub metrics: Vec<(MetricId, Role)>,
     pub covariate_window: i64,
     pub segments: Vec<SegmentId>,
+    /// Declared minimum detectable effect for metrics without their own, relative.
+    pub mde: Option<f64>,
 }

@@ -31,7 +31,7 @@ pub mod workspace;
 use ir::{Catalog, Direction, ExperimentId};
 use plan::{ExperimentPlan, PlannedKind};
 use render::{Dialect, DialectError};
-use stats::readout::{MetricShape, MetricSpec, ReadoutSpec};
+use stats::readout::{CovariateShape, MetricShape, MetricSpec, ReadoutSpec};
 
 /// Plans, renders and validates the readout query of one experiment.
 ///
@@ -53,12 +53,59 @@ pub fn compile_experiment(
     Ok((plan, sql))
 }
 
+/// Statistical choices of a readout (command-line flags).
+#[derive(Debug, Clone, Copy)]
+pub struct ReadoutOptions {
+    pub alpha: f64,
+    pub cuped: bool,
+    pub sequential: bool,
+}
+
+impl Default for ReadoutOptions {
+    fn default() -> Self {
+        ReadoutOptions {
+            alpha: 0.05,
+            cuped: true,
+            sequential: false,
+        }
+    }
+}
+
+fn covariate_shape(kind: &PlannedKind, covariate: &PlannedKind) -> Option<CovariateShape> {
+    use plan::covariance_name as cov;
+    match (kind, covariate) {
+        (PlannedKind::Mean { column: y }, PlannedKind::Mean { column: x }) => Some(CovariateShape::Mean {
+            column: x.clone(),
+            covariance: cov(y, x),
+        }),
+        (
+            PlannedKind::Ratio {
+                numerator: n,
+                denominator: d,
+            },
+            PlannedKind::Ratio {
+                numerator: np,
+                denominator: dp,
+            },
+        ) => Some(CovariateShape::Ratio {
+            numerator: np.clone(),
+            denominator: dp.clone(),
+            pre: cov(np, dp),
+            n_np: cov(n, np),
+            n_dp: cov(n, dp),
+            d_np: cov(d, np),
+            d_dp: cov(d, dp),
+        }),
+        _ => None,
+    }
+}
+
 /// What the statistics stage needs to know about an experiment.
 pub fn readout_spec(
     catalog: &Catalog,
     experiment: ExperimentId,
     plan: &ExperimentPlan,
-    alpha: f64,
+    options: ReadoutOptions,
 ) -> ReadoutSpec {
     let exp = &catalog.experiments[experiment];
     ReadoutSpec {
@@ -69,9 +116,14 @@ pub fn readout_spec(
             .metrics
             .iter()
             .map(|m| {
-                let direction = catalog
-                    .metric(&m.name)
-                    .and_then(|id| catalog.metrics[id].direction);
+                let metric = catalog.metric(&m.name).map(|id| &catalog.metrics[id]);
+                let binary = matches!(
+                    metric.map(|m| &m.kind),
+                    Some(ir::MetricKind::Events {
+                        aggregation: ir::Aggregation::Any | ir::Aggregation::AtLeast(_),
+                        ..
+                    })
+                );
                 MetricSpec {
                     name: m.name.clone(),
                     role: m.role,
@@ -88,11 +140,16 @@ pub fn readout_spec(
                             covariance: plan::covariance_name(numerator, denominator),
                         },
                     },
-                    higher_is_better: direction.map(|d| d == Direction::Increase),
+                    higher_is_better: metric.and_then(|m| m.direction).map(|d| d == Direction::Increase),
+                    binary,
+                    mde: metric.and_then(|m| m.mde).or(exp.mde),
+                    covariate: m.covariate.as_ref().and_then(|c| covariate_shape(&m.kind, c)),
                 }
             })
             .collect(),
-        alpha,
+        alpha: options.alpha,
+        cuped: options.cuped,
+        sequential: options.sequential,
         start: exp.start.to_iso(),
         end: exp.end.to_iso(),
         exploratory_segments: plan

@@ -621,3 +621,50 @@ fn min_max_without_events_stay_null_and_n_shrinks() {
     assert_eq!(row.columns["max_amount"].n, with_value as u64);
     assert_eq!(row.columns["purchases"].n, row.units, "counts are zero-filled");
 }
+
+/// NIST StRD Univariate Summary Statistics through the DuckDB path: per-unit values of a sum
+/// metric whose arm-level variance is DuckDB's own `var_samp`, as plumb's SQL computes it.
+/// Certified sd: NumAcc3 0.1, NumAcc4 0.1, Lew 277.332168044316 (f64 inputs cap the accuracy
+/// of NumAcc3/4 at ~3.5e-10 / 5.6e-9 relative, so 1e-9 / 1e-8 there; shared REFERENCES.md).
+#[test]
+fn nist_variance_numerics_through_duckdb() {
+    for (file, mean, sd, tol) in [
+        ("nist_strd_numacc3.csv", 1000000.2, 0.1, 1e-9),
+        ("nist_strd_numacc4.csv", 10000000.2, 0.1, 1e-8),
+        ("nist_strd_lew.csv", -177.435, 277.332168044316, 1e-12),
+    ] {
+        let text = std::fs::read_to_string(
+            Path::new(env!("CARGO_MANIFEST_DIR"))
+                .join("tests/data/reference")
+                .join(file),
+        )
+        .unwrap();
+        let values: Vec<&str> = text.lines().skip(1).filter(|l| !l.trim().is_empty()).collect();
+        let dir = tempfile::tempdir().unwrap();
+        let (mut ex, mut ev) = (String::from("u,exp,arm,at\n"), String::from("u,at,y\n"));
+        for (i, v) in values.iter().enumerate() {
+            ex += &format!("a{i},e,a,2026-01-01 00:00:00\n");
+            ev += &format!("a{i},2026-01-01 01:00:00,{v}\n");
+        }
+        for i in 0..3 {
+            ex += &format!("b{i},e,b,2026-01-01 00:00:00\n");
+        }
+        std::fs::write(dir.path().join("ex.csv"), ex).unwrap();
+        std::fs::write(dir.path().join("ev.csv"), ev).unwrap();
+        let catalog = "units:\n  - name: u\nevent_tables:\n  - name: ev\n    unit: u\n    table: ev\n    id: u\n    time: at\nexposure_logs:\n  - name: ex\n    unit: u\n    table: ex\n    id: u\n    time: at\n    experiment: exp\n    arm: arm\nmetrics:\n  - name: y\n    events: ev\n    per_unit: sum\n    of: \"CAST(y AS DOUBLE)\"\nexperiments:\n  - name: e\n    exposures: ex\n    control: a\n    split: {a: 1, b: 1}\n    start: 2026-01-01\n    end: 2026-01-02\n    primary: [y]\n";
+        let mut sources = SourceMap::new();
+        let (raw, _) = plumb::load::load_catalog_texts(&[("nist.yaml", catalog)], &mut sources);
+        let catalog = plumb::resolve::resolve(&sources, &raw).unwrap();
+        let dialect = plumb::render::Dialect::load("duckdb", None).unwrap();
+        let (plan, sql) = plumb::compile_experiment(&catalog, 0, &[], &dialect).unwrap();
+        let tables = vec![
+            ("ex".to_string(), dir.path().join("ex.csv")),
+            ("ev".to_string(), dir.path().join("ev.csv")),
+        ];
+        let engine = Engine::open(None, &tables).unwrap();
+        let table = plumb::execute::stats_table(&plan, &engine.query(&sql).unwrap()).unwrap();
+        let a = table.rows.iter().find(|r| r.arm == "a").unwrap().columns["y"];
+        assert!(((a.mean - mean) / mean).abs() < 1e-14, "{file} mean {}", a.mean);
+        assert!(((a.sd() - sd) / sd).abs() < tol, "{file} sd {} vs {sd}", a.sd());
+    }
+}

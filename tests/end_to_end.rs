@@ -106,7 +106,7 @@ fn handmade_dataset_matches_hand_computation() {
     }
 
     // The readout: the holdout arm is excluded as an unknown arm and reported.
-    let spec = plumb::readout_spec(&ws.catalog, id, &plan, 0.05);
+    let spec = plumb::readout_spec(&ws.catalog, id, &plan, plumb::ReadoutOptions::default());
     let readout = plumb::stats::readout::build(&spec, &table);
     assert_eq!(readout.excluded.multiple_arms, 1);
     assert_eq!(readout.excluded.unknown_arm, 1);

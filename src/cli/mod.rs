@@ -1,7 +1,8 @@
 //! The command line: raw arguments (clap) -> resolved settings -> one pipeline run -> exit code.
 //!
 //! The only module that prints, reads the environment or decides exit codes:
-//! 0 success, 1 catalog errors (diagnostics printed), 2 usage or internal errors.
+//! 0 success, 1 catalog errors (diagnostics printed), 2 usage or internal errors, 3 a readout
+//! that must not be acted on (sample-ratio mismatch or a failed guardrail).
 //! Output to a closed pipe (`plumb sql ... | head`) ends quietly.
 
 use crate::diagnostics::{self, Diagnostic, did_you_mean};
@@ -15,6 +16,8 @@ use std::process::ExitCode;
 
 /// Exit code: catalog errors.
 pub const EXIT_CATALOG: u8 = 1;
+/// Exit code: the readout is void (sample-ratio mismatch) or a guardrail failed.
+pub const EXIT_CHECKS: u8 = 3;
 /// Exit code: usage errors (bad flags, unknown experiment, missing workspace) and internal errors.
 pub const EXIT_USAGE: u8 = 2;
 
@@ -69,6 +72,12 @@ pub enum Command {
         /// Extra segments to slice by, comma-separated (shown as exploratory rows).
         #[arg(long, value_delimiter = ',', value_name = "SEGMENT,...")]
         by: Vec<String>,
+        /// Do not adjust metrics with their pre-exposure covariates (CUPED).
+        #[arg(long)]
+        no_cuped: bool,
+        /// Always-valid p-values and intervals (mixture SPRT), for looking every day.
+        #[arg(long)]
+        sequential: bool,
     },
     /// Write the plant-shop demo workspace and print its main readout.
     Demo {
@@ -208,12 +217,22 @@ fn dispatch(args: &Args) -> Result<(), Failure> {
             alpha,
             format,
             by,
+            no_cuped,
+            sequential,
         } => {
             if !(*alpha > 0.0 && *alpha < 1.0) {
                 return Err(usage(format!("--alpha must be between 0 and 1, got {alpha}")));
             }
-            let text = analyze(args, &workspace_dir(args), experiment, by, *alpha, *format)?;
+            let options = crate::ReadoutOptions {
+                alpha: *alpha,
+                cuped: !no_cuped,
+                sequential: *sequential,
+            };
+            let (text, blocked) = analyze(args, &workspace_dir(args), experiment, by, options, *format)?;
             emit(&text);
+            if blocked {
+                return Err(Failure::Reported(EXIT_CHECKS));
+            }
             Ok(())
         }
         Command::Demo {
@@ -239,7 +258,14 @@ fn dispatch(args: &Args) -> Result<(), Failure> {
                 started.elapsed().as_secs_f64()
             );
             if !no_readout {
-                let text = analyze(args, dir, crate::demo::MAIN_EXPERIMENT, &[], 0.05, Format::Table)?;
+                let (text, _) = analyze(
+                    args,
+                    dir,
+                    crate::demo::MAIN_EXPERIMENT,
+                    &[],
+                    crate::ReadoutOptions::default(),
+                    Format::Table,
+                )?;
                 emit(&text);
                 eprintln!(
                     "plumb: next, try `plumb --workspace {} analyze care_guide_banner` (an A/A test) or `plumb --workspace {} sql {}`",
@@ -296,7 +322,14 @@ fn check(args: &Args, format: Format) -> Result<(), Failure> {
 }
 
 #[cfg(not(feature = "engine"))]
-fn analyze(_: &Args, _: &Path, _: &str, _: &[String], _: f64, _: Format) -> Result<String, Failure> {
+fn analyze(
+    _: &Args,
+    _: &Path,
+    _: &str,
+    _: &[String],
+    _: crate::ReadoutOptions,
+    _: Format,
+) -> Result<(String, bool), Failure> {
     Err(usage(
         "this plumb was built without the `engine` feature, so it cannot run SQL locally",
     ))
@@ -308,9 +341,9 @@ fn analyze(
     dir: &Path,
     experiment: &str,
     by: &[String],
-    alpha: f64,
+    options: crate::ReadoutOptions,
     format: Format,
-) -> Result<String, Failure> {
+) -> Result<(String, bool), Failure> {
     use crate::execute::duckdb::Engine;
     let mut sources = SourceMap::new();
     let (ws, _) = open(dir, &mut sources)?;
@@ -328,12 +361,14 @@ fn analyze(
     }
     let rows = rows.map_err(|e| usage(e.to_string()))?;
     let table = crate::execute::stats_table(&plan, &rows).map_err(|e| usage(e.to_string()))?;
-    let spec = crate::readout_spec(&ws.catalog, id, &plan, alpha);
+    let spec = crate::readout_spec(&ws.catalog, id, &plan, options);
     let readout = crate::stats::readout::build(&spec, &table);
-    Ok(match format {
+    let blocked = readout.void || !readout.guardrails_failed.is_empty();
+    let text = match format {
         Format::Table => crate::output::readout_text(&readout),
         Format::Json => crate::output::readout_json(&readout),
-    })
+    };
+    Ok((text, blocked))
 }
 
 /// A spinner on stderr while a query runs, only when stderr is a terminal.

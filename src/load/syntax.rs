@@ -146,6 +146,8 @@ pub struct Metric {
     pub ratio: Option<Vec<String>>,
     /// `increase` or `decrease`: which way is good. Used by guardrails.
     pub direction: Option<String>,
+    /// Minimum detectable effect worth detecting, relative: `2%`.
+    pub mde: Option<Scalar>,
 }
 
 #[derive(Debug, Clone, Deserialize, Serialize)]
@@ -163,6 +165,7 @@ pub struct Experiment {
     pub guardrails: Option<Vec<String>>,
     pub covariate_window: Option<Scalar>,
     pub segments: Option<Vec<String>>,
+    pub mde: Option<Scalar>,
 }
 
 /// The top-level lists a catalog file may hold, with the keys each item accepts.
@@ -224,6 +227,7 @@ pub const KINDS: &[(&str, &[&str])] = &[
             "at_least",
             "ratio",
             "direction",
+            "mde",
         ],
     ),
     (
@@ -242,6 +246,7 @@ pub const KINDS: &[(&str, &[&str])] = &[
             "guardrails",
             "covariate_window",
             "segments",
+            "mde",
         ],
     ),
 ];

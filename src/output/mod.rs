@@ -54,8 +54,8 @@ fn row_cells(r: &ResultRow) -> Vec<Cell> {
         .map(|d| format!("{} [{}, {}]", pct(d.estimate), pct(d.ci_low), pct(d.ci_high)))
         .unwrap_or_else(|| "-".into());
     let change = match r.verdict {
-        Some(v) => format!("{} ({v})", r.change),
-        None => r.change.to_string(),
+        "better" | "worse" => format!("{} ({})", r.change, r.verdict),
+        _ => r.change.to_string(),
     };
     vec![
         Cell::new(&r.metric),
@@ -65,10 +65,28 @@ fn row_cells(r: &ResultRow) -> Vec<Cell> {
         Cell::new(mean(r.control.mean)).set_alignment(CellAlignment::Right),
         Cell::new(mean(r.treatment.mean)).set_alignment(CellAlignment::Right),
         Cell::new(diff).set_alignment(CellAlignment::Right),
-        Cell::new(p_value(r.difference.as_ref().and_then(|d| d.p_value))).set_alignment(CellAlignment::Right),
+        Cell::new(p_cell(r)).set_alignment(CellAlignment::Right),
         Cell::new(rel).set_alignment(CellAlignment::Right),
         Cell::new(change),
+        Cell::new(
+            r.cuped
+                .as_ref()
+                .map(|c| format!("{}%", sig(c.variance_reduction * 100.0, 2)))
+                .unwrap_or_else(|| "-".into()),
+        )
+        .set_alignment(CellAlignment::Right),
     ]
+}
+
+/// The p-value, followed by the family-adjusted one when the adjustment changed it.
+fn p_cell(r: &ResultRow) -> String {
+    let Some(d) = r.difference.as_ref() else {
+        return "-".into();
+    };
+    match (d.p_value, d.adjusted_p_value) {
+        (Some(p), Some(a)) if (a - p).abs() > 1e-12 => format!("{} ({})", p_value(Some(p)), p_value(Some(a))),
+        (p, _) => p_value(p),
+    }
 }
 
 /// The readout as text for a terminal: header, arms, results table, assumptions, cautions.
@@ -123,12 +141,15 @@ pub fn readout_text(r: &Readout) -> String {
             "p".into(),
             format!("relative [{conf}]"),
             "change".into(),
+            "CUPED".into(),
         ]);
     for row in r.results.iter().filter(|x| x.segment.is_none()) {
         table.add_row(row_cells(row));
     }
     out.push_str(&table.to_string());
-    out.push('\n');
+    out.push_str(
+        "\np: raw (adjusted within the row's family when different); CUPED: variance removed by the covariate.\n",
+    );
     let segment_rows: Vec<&ResultRow> = r
         .results
         .iter()
@@ -160,6 +181,7 @@ pub fn readout_text(r: &Readout) -> String {
             ];
             let mut rest = row_cells(row);
             rest.remove(1); // role: all primary here
+            rest.pop(); // CUPED column: shown once, in the main table
             cells.extend(rest);
             seg.add_row(cells);
         }

@@ -330,6 +330,25 @@ impl Resolver<'_> {
         }
     }
 
+    /// `mde: 2%`: a relative minimum detectable effect.
+    fn mde(&mut self, span: Option<Span>, text: &str) -> Option<f64> {
+        let parsed = text
+            .trim()
+            .strip_suffix('%')
+            .and_then(|p| p.trim().parse::<f64>().ok());
+        match parsed {
+            Some(p) if p > 0.0 && p.is_finite() => Some(p / 100.0),
+            _ => {
+                self.push(
+                    Diagnostic::error("E017", format!("bad `mde` value `{text}`"))
+                        .at(span)
+                        .hint("write the smallest relative change worth detecting, e.g. `mde: 2%`"),
+                );
+                None
+            }
+        }
+    }
+
     /// `winsorize: 99.9%` (a percentile of the exposed units' values) or `winsorize: 250`.
     fn cap(&mut self, item: &Item<syntax::Metric>, text: &str) -> Option<ir::Cap> {
         let t = text.trim();
@@ -561,6 +580,10 @@ impl Resolver<'_> {
             }
         };
         let cap = v.winsorize.as_ref().and_then(|w| self.cap(item, &w.0));
+        let mde = v
+            .mde
+            .as_ref()
+            .and_then(|m| self.mde(item.value_span("mde"), &m.0));
         let mut metric = ir::Metric {
             name: v.name.clone().unwrap_or_default(),
             description: v.description.clone(),
@@ -571,6 +594,7 @@ impl Resolver<'_> {
                 denominator: 0,
             },
             direction,
+            mde,
         };
         if let Some(parts) = &v.ratio {
             for key in [
@@ -914,6 +938,10 @@ impl Resolver<'_> {
             .as_ref()
             .map(|k| k.0.clone())
             .unwrap_or_else(|| name.clone());
+        let mde = v
+            .mde
+            .as_ref()
+            .and_then(|m| self.mde(item.value_span("mde"), &m.0));
         Some(ir::Experiment {
             name,
             description: v.description.clone(),
@@ -926,6 +954,7 @@ impl Resolver<'_> {
             metrics: roles,
             covariate_window,
             segments: segment_ids,
+            mde,
         })
     }
 }

@@ -4,6 +4,7 @@
 //! warehouse returns), the outputs are estimates with intervals and p-values. Each formula
 //! cites its source beside it. Distributions come from `statrs`.
 
+pub mod analysis;
 pub mod cuped;
 pub mod multiple;
 pub mod power;
@@ -78,6 +79,11 @@ pub fn z_quantile(p: f64) -> f64 {
 
 fn t_dist(df: f64) -> Option<StudentsT> {
     StudentsT::new(0.0, 1.0, df).ok()
+}
+
+/// An estimate with a normal reference distribution.
+pub fn estimate_normal(point: f64, se: f64, alpha: f64) -> Option<Estimate> {
+    estimate(point, se, f64::INFINITY, alpha)
 }
 
 /// Builds an estimate from a point value, its standard error and reference df

@@ -4,6 +4,7 @@
 //! [`Readout`] is a boundary type: `--format json` serialises it, and its field names are a
 //! contract with users' scripts (see README.md). Keys may be added, never renamed.
 
+use super::analysis::{self, ArmMoments, Options, RatioCovariate};
 use super::{Estimate, Moments, RatioMoments, SampleRatio};
 use crate::ir::Role;
 use serde::Serialize;
@@ -44,6 +45,10 @@ pub struct ReadoutSpec {
     pub end: String,
     /// Segments sliced although the experiment did not declare them (e.g. `--by`).
     pub exploratory_segments: Vec<String>,
+    /// Apply CUPED where covariate moments are present.
+    pub cuped: bool,
+    /// Always-valid (mSPRT) p-values and intervals instead of fixed-sample ones.
+    pub sequential: bool,
 }
 
 #[derive(Debug, Clone)]
@@ -53,6 +58,33 @@ pub struct MetricSpec {
     pub kind: MetricShape,
     /// `Some(true)` when higher is better, `Some(false)` when lower is better.
     pub higher_is_better: Option<bool>,
+    /// A 0/1 metric (any, at_least): compared as two proportions.
+    pub binary: bool,
+    /// Declared minimum detectable effect, relative (0.02 for `2%`).
+    pub mde: Option<f64>,
+    /// Pre-exposure covariate columns, when the experiment has a covariate window.
+    pub covariate: Option<CovariateShape>,
+}
+
+/// Where a metric's covariate moments are in the statistics table.
+#[derive(Debug, Clone)]
+pub enum CovariateShape {
+    Mean {
+        column: String,
+        /// Key of cov(metric, covariate).
+        covariance: String,
+    },
+    Ratio {
+        numerator: String,
+        denominator: String,
+        /// Keys of cov(num_pre, den_pre), cov(num, num_pre), cov(num, den_pre),
+        /// cov(den, num_pre), cov(den, den_pre).
+        pre: String,
+        n_np: String,
+        n_dp: String,
+        d_np: String,
+        d_dp: String,
+    },
 }
 
 #[derive(Debug, Clone)]
@@ -79,8 +111,20 @@ pub struct Readout {
     pub excluded: Excluded,
     pub sample_ratio: Option<SampleRatioOut>,
     pub results: Vec<ResultRow>,
+    /// Guardrail rows (overall) that moved the wrong way significantly.
+    pub guardrails_failed: Vec<GuardrailFailure>,
+    /// True when the readout must not be used for a decision (sample-ratio mismatch).
+    pub void: bool,
+    pub cuped: bool,
+    pub sequential: bool,
     pub assumptions: Vec<String>,
     pub cautions: Vec<String>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct GuardrailFailure {
+    pub metric: String,
+    pub arm: String,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -132,10 +176,36 @@ pub struct ResultRow {
     pub treatment: ArmSummary,
     pub difference: Option<DifferenceOut>,
     pub relative: Option<RelativeOut>,
-    /// `increase`, `decrease`, `no detectable change`, or `not enough data`.
+    /// `increase`, `decrease`, `no detectable change`, or `not enough data` (from the adjusted
+    /// p-value of the row's family).
     pub change: &'static str,
-    /// `better`, `worse` or null, from the metric's `direction`.
-    pub verdict: Option<&'static str>,
+    /// `better`, `worse`, `no detectable change` or `not enough data`; `changed` for a
+    /// significant change of a metric without `direction`.
+    pub verdict: &'static str,
+    /// The multiple-testing family: `primary (Holm)`, `secondary (Benjamini-Hochberg)`,
+    /// `segment (Benjamini-Hochberg)` or `guardrail (unadjusted)`.
+    pub family: &'static str,
+    pub cuped: Option<CupedOut>,
+    pub power: PowerOut,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct CupedOut {
+    pub theta: f64,
+    /// Share of the variance of the difference removed by the covariate (1 - Var_adj/Var_raw).
+    pub variance_reduction: f64,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct PowerOut {
+    /// Minimum detectable effect (absolute) at the current sample size, alpha and 80% power.
+    pub mde: Option<f64>,
+    /// The same relative to the control value.
+    pub mde_relative: Option<f64>,
+    /// The declared `mde` (relative), if any.
+    pub declared_mde: Option<f64>,
+    /// Power to detect the declared MDE at the current sample size.
+    pub power_at_declared_mde: Option<f64>,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -158,6 +228,8 @@ pub struct DifferenceOut {
     pub ci_low: f64,
     pub ci_high: f64,
     pub p_value: Option<f64>,
+    /// The p-value adjusted within the row's family (Holm / Benjamini-Hochberg).
+    pub adjusted_p_value: Option<f64>,
     pub se: f64,
     /// Welch–Satterthwaite degrees of freedom; null for the normal (delta-method) reference.
     pub df: Option<f64>,
@@ -212,6 +284,7 @@ fn difference(e: &Estimate) -> DifferenceOut {
         ci_low: e.ci_low,
         ci_high: e.ci_high,
         p_value: e.p_value,
+        adjusted_p_value: e.p_value,
         se: e.se,
         df: finite(e.df),
     }
@@ -264,13 +337,22 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
         });
         results.extend(metric_rows(spec, &rows, segment));
     }
+    adjust_and_judge(spec, &mut results);
+    let guardrails_failed: Vec<GuardrailFailure> = results
+        .iter()
+        .filter(|r| r.segment.is_none() && r.role == "guardrail" && r.verdict == "worse")
+        .map(|r| GuardrailFailure {
+            metric: r.metric.clone(),
+            arm: r.arm.clone(),
+        })
+        .collect();
     let excluded = Excluded {
         multiple_arms: table.excluded_multiple_arms,
         missing_arm: table.excluded_missing_arm,
         unknown_arm,
         rows_without_unit: table.excluded_rows_without_unit,
     };
-    let cautions = cautions(spec, srm.as_ref(), &excluded, &results);
+    let cautions = cautions(spec, srm.as_ref(), &excluded, &results, &guardrails_failed);
     Readout {
         experiment: spec.experiment.clone(),
         control: spec.control.clone(),
@@ -280,105 +362,231 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
         arms,
         excluded,
         sample_ratio: srm.map(Into::into),
+        void: srm.is_some_and(|s| s.mismatch),
         results,
+        guardrails_failed,
+        cuped: spec.cuped,
+        sequential: spec.sequential,
         assumptions: assumptions(spec),
         cautions,
+    }
+}
+
+fn arm_moments(m: &MetricSpec, r: &ArmRow) -> Option<ArmMoments> {
+    let col = |c: &str| r.columns.get(c).copied();
+    let cov = |c: &str| r.covariances.get(c).copied();
+    Some(match &m.kind {
+        MetricShape::Mean { column } => ArmMoments::Mean {
+            y: col(column)?,
+            covariate: match &m.covariate {
+                Some(CovariateShape::Mean { column, covariance }) => col(column)
+                    .zip(cov(covariance))
+                    .filter(|(x, c)| x.n > 1 && c.is_finite()),
+                _ => None,
+            },
+        },
+        MetricShape::Ratio {
+            numerator,
+            denominator,
+            covariance,
+        } => ArmMoments::Ratio {
+            r: RatioMoments {
+                numerator: col(numerator)?,
+                denominator: col(denominator)?,
+                cov: cov(covariance)?,
+            },
+            covariate: match &m.covariate {
+                Some(CovariateShape::Ratio {
+                    numerator,
+                    denominator,
+                    pre,
+                    n_np,
+                    n_dp,
+                    d_np,
+                    d_dp,
+                }) => (|| {
+                    Some(RatioCovariate {
+                        numerator: col(numerator)?,
+                        denominator: col(denominator)?,
+                        pre: cov(pre)?,
+                        n_np: cov(n_np)?,
+                        n_dp: cov(n_dp)?,
+                        d_np: cov(d_np)?,
+                        d_dp: cov(d_dp)?,
+                    })
+                })()
+                .filter(|c| c.denominator.mean != 0.0),
+                _ => None,
+            },
+        },
+    })
+}
+
+fn arm_summary(m: Option<&ArmMoments>) -> ArmSummary {
+    match m {
+        Some(ArmMoments::Mean { y, .. }) => summary(Some(y)),
+        Some(ArmMoments::Ratio { r, .. }) => ratio_summary(Some(r)),
+        None => summary(None),
     }
 }
 
 /// Result rows of every metric and non-control arm for one group of arm rows.
 fn metric_rows(spec: &ReadoutSpec, rows: &[&ArmRow], segment: Option<SegmentRef>) -> Vec<ResultRow> {
     let row = |arm: &str| rows.iter().copied().find(|r| r.arm == arm);
+    let options = Options {
+        alpha: spec.alpha,
+        cuped: spec.cuped,
+        sequential: spec.sequential,
+        power: 0.8,
+    };
     let mut results = Vec::new();
     for m in &spec.metrics {
+        let group: Vec<ArmMoments> = spec
+            .arms
+            .iter()
+            .filter_map(|(a, _)| row(a).and_then(|r| arm_moments(m, r)))
+            .collect();
+        let control = row(&spec.control).and_then(|r| arm_moments(m, r));
         for (arm, _) in spec.arms.iter().skip(1) {
-            let (c, t) = (row(&spec.control), row(arm));
-            let (control, treatment, diff, rel) = match &m.kind {
-                MetricShape::Mean { column } => {
-                    let cm = c.and_then(|r| r.columns.get(column));
-                    let tm = t.and_then(|r| r.columns.get(column));
-                    let (d, r) = match (cm, tm) {
-                        (Some(cm), Some(tm)) => (
-                            super::welch(cm, tm, spec.alpha),
-                            super::relative(cm, tm, spec.alpha),
-                        ),
-                        _ => (None, None),
-                    };
-                    (summary(cm), summary(tm), d, r)
-                }
-                MetricShape::Ratio {
-                    numerator,
-                    denominator,
-                    covariance,
-                } => {
-                    let moments = |r: Option<&ArmRow>| -> Option<RatioMoments> {
-                        let r = r?;
-                        Some(RatioMoments {
-                            numerator: *r.columns.get(numerator)?,
-                            denominator: *r.columns.get(denominator)?,
-                            cov: *r.covariances.get(covariance)?,
-                        })
-                    };
-                    let (cm, tm) = (moments(c), moments(t));
-                    let (d, r) = match (&cm, &tm) {
-                        (Some(cm), Some(tm)) => (
-                            super::ratio_difference(cm, tm, spec.alpha),
-                            super::ratio_relative(cm, tm, spec.alpha),
-                        ),
-                        _ => (None, None),
-                    };
-                    (ratio_summary(cm.as_ref()), ratio_summary(tm.as_ref()), d, r)
-                }
-            };
-            let change = match diff.as_ref().and_then(|d| d.p_value.map(|p| (d.estimate, p))) {
-                None if diff.is_some() => "no detectable change",
-                None => "not enough data",
-                Some((_, p)) if p >= spec.alpha => "no detectable change",
-                Some((e, _)) if e > 0.0 => "increase",
-                Some(_) => "decrease",
-            };
-            let verdict = match (change, m.higher_is_better) {
-                ("increase", Some(up)) | ("decrease", Some(up)) => Some(if (change == "increase") == up {
-                    "better"
-                } else {
-                    "worse"
-                }),
+            let treatment = row(arm).and_then(|r| arm_moments(m, r));
+            let cmp = match (&control, &treatment) {
+                (Some(c), Some(t)) => Some(analysis::compare(c, t, &group, m.binary, m.mde, &options)),
                 _ => None,
             };
+            let diff = cmp.and_then(|c| c.difference);
+            let control_value = cmp
+                .and_then(|c| c.control_value)
+                .map(f64::abs)
+                .filter(|v| *v > 0.0);
+            let mde = cmp.and_then(|c| c.mde);
             results.push(ResultRow {
                 metric: m.name.clone(),
                 role: m.role.as_str(),
                 arm: arm.clone(),
                 segment: segment.clone(),
-                control,
-                treatment,
+                control: arm_summary(control.as_ref()),
+                treatment: arm_summary(treatment.as_ref()),
                 difference: diff.as_ref().map(difference),
-                relative: rel.map(|r| RelativeOut {
+                relative: cmp.and_then(|c| c.relative).map(|r| RelativeOut {
                     estimate: r.estimate,
                     ci_low: r.ci_low,
                     ci_high: r.ci_high,
                 }),
-                change,
-                verdict,
+                change: "not enough data",
+                verdict: "not enough data",
+                family: match (&segment, m.role) {
+                    (Some(_), _) => "segment (Benjamini-Hochberg)",
+                    (None, Role::Primary) => "primary (Holm)",
+                    (None, Role::Secondary) => "secondary (Benjamini-Hochberg)",
+                    (None, Role::Guardrail) => "guardrail (unadjusted)",
+                },
+                cuped: cmp
+                    .and_then(|c| c.cuped)
+                    .map(|(theta, variance_reduction)| CupedOut {
+                        theta,
+                        variance_reduction,
+                    }),
+                power: PowerOut {
+                    mde,
+                    mde_relative: mde.zip(control_value).map(|(m, c)| m / c),
+                    declared_mde: m.mde,
+                    power_at_declared_mde: cmp.and_then(|c| c.power_at_declared),
+                },
             });
         }
     }
     results
 }
 
+/// Adjusts p-values within each family and sets `change` and `verdict` from them.
+fn adjust_and_judge(spec: &ReadoutSpec, results: &mut [ResultRow]) {
+    for family in [
+        "primary (Holm)",
+        "secondary (Benjamini-Hochberg)",
+        "segment (Benjamini-Hochberg)",
+    ] {
+        let idx: Vec<usize> = (0..results.len())
+            .filter(|&i| results[i].family == family)
+            .filter(|&i| {
+                results[i]
+                    .difference
+                    .as_ref()
+                    .is_some_and(|d| d.p_value.is_some())
+            })
+            .collect();
+        let p: Vec<f64> = idx
+            .iter()
+            .map(|&i| {
+                results[i]
+                    .difference
+                    .as_ref()
+                    .and_then(|d| d.p_value)
+                    .unwrap_or(1.0)
+            })
+            .collect();
+        let adjusted = if family.starts_with("primary") {
+            super::multiple::holm(&p)
+        } else {
+            super::multiple::benjamini_hochberg(&p)
+        };
+        for (k, &i) in idx.iter().enumerate() {
+            if let Some(d) = results[i].difference.as_mut() {
+                d.adjusted_p_value = Some(adjusted[k]);
+            }
+        }
+    }
+    for r in results.iter_mut() {
+        let higher_is_better = spec
+            .metrics
+            .iter()
+            .find(|m| m.name == r.metric)
+            .and_then(|m| m.higher_is_better);
+        r.change = match &r.difference {
+            None => "not enough data",
+            Some(d) => match d.adjusted_p_value {
+                None => "no detectable change",
+                Some(p) if p >= spec.alpha => "no detectable change",
+                Some(_) if d.estimate > 0.0 => "increase",
+                Some(_) => "decrease",
+            },
+        };
+        r.verdict = match (r.change, higher_is_better) {
+            ("increase", Some(up)) | ("decrease", Some(up)) => {
+                if (r.change == "increase") == up {
+                    "better"
+                } else {
+                    "worse"
+                }
+            }
+            ("increase", None) | ("decrease", None) => "changed",
+            (other, _) => other,
+        };
+    }
+}
+
 fn assumptions(spec: &ReadoutSpec) -> Vec<String> {
     let conf = (1.0 - spec.alpha) * 100.0;
-    vec![
-        "Units are assigned to arms at random and independently; each unit is counted in the arm of its first exposure.".into(),
+    let mut out = vec![
+        "Units are assigned to arms at random and independently; each unit is counted in the arm of its first exposure.".to_string(),
         format!(
             "Only events from a unit's first exposure (within the metric's window) up to the data cut-off {} count.",
             spec.end
         ),
         format!(
-            "Differences are treatment minus control with {conf:.0}% intervals: Welch's t for means; the delta method (normal approximation) for relative differences and ratio metrics. Both rely on enough units per arm for averages to be approximately normal."
+            "Differences are treatment minus control with {conf:.0}% intervals: Welch's t for means, two proportions (Wald interval, pooled z test) for 0/1 metrics, the delta method for relative differences and ratio metrics. All rely on enough units per arm for averages to be approximately normal."
         ),
-        "p-values are for one look at the data at the planned end; looking repeatedly and stopping on a good p-value inflates false positives.".into(),
-    ]
+        "Multiple testing: primary metrics are one family adjusted with Holm (family-wise error); secondary metrics and segment rows are families adjusted with Benjamini-Hochberg (false discovery rate); guardrails are not adjusted, so they fail more readily. Verdicts use the adjusted p-values.".into(),
+        "MDE is the smallest effect this comparison detects with 80% power at the current sample size.".into(),
+    ];
+    if spec.cuped {
+        out.push("CUPED: where a covariate window is set, each metric is adjusted with its own pre-exposure value (theta pooled over arms); this narrows intervals without biasing the difference, because exposure cannot affect the past.".into());
+    }
+    if spec.sequential {
+        out.push("Sequential mode: p-values and intervals are always valid (mixture SPRT with a normal mixing distribution whose scale is the declared MDE, or 5% of the control value): you may look every day and stop when a result is significant. They are wider than fixed-sample intervals; relative intervals treat the control value as known.".into());
+    } else {
+        out.push("p-values are for one look at the data at the planned end; looking repeatedly and stopping on a good p-value inflates false positives (use --sequential for that).".into());
+    }
+    out
 }
 
 fn cautions(
@@ -386,8 +594,25 @@ fn cautions(
     srm: Option<&SampleRatio>,
     ex: &Excluded,
     results: &[ResultRow],
+    guardrails: &[GuardrailFailure],
 ) -> Vec<String> {
     let mut out = Vec::new();
+    for g in guardrails {
+        out.push(format!(
+            "Guardrail failed: {} moved the wrong way in arm {} (significant at alpha = {}). Do not ship this arm without understanding why.",
+            g.metric, g.arm, spec.alpha
+        ));
+    }
+    for m in spec
+        .metrics
+        .iter()
+        .filter(|m| m.role == Role::Guardrail && m.higher_is_better.is_none())
+    {
+        out.push(format!(
+            "Guardrail {} has no `direction`, so it cannot fail; declare `direction: increase` or `decrease` on the metric.",
+            m.name
+        ));
+    }
     match srm {
         Some(s) if s.mismatch => out.push(format!(
             "Sample-ratio mismatch: the arm sizes are very unlikely under the planned split (chi-square p = {:.2e} < {}). Assignment or logging is broken; the readout is void until the cause is found.",
@@ -430,22 +655,32 @@ fn cautions(
     if results.iter().any(|r| r.segment.is_some()) {
         out.push("Segment rows slice the same units many ways: expect some to differ by chance, and read them as a drill-down, not as separate results.".into());
     }
-    let comparisons = results
-        .iter()
-        .filter(|r| r.segment.is_none() && r.difference.as_ref().is_some_and(|d| d.p_value.is_some()))
-        .count();
-    if comparisons > 1 {
-        out.push(format!(
-            "{comparisons} comparisons are shown and p-values are not adjusted for multiplicity: about {:.1} of them would look significant at alpha = {} by chance alone.",
-            comparisons as f64 * spec.alpha,
-            spec.alpha
-        ));
-    }
     let thin = results.iter().filter(|r| r.change == "not enough data").count();
     if thin > 0 {
         out.push(format!(
             "{thin} results have too few units (fewer than two per arm with a value) to compare."
         ));
+    }
+    for r in results
+        .iter()
+        .filter(|r| r.segment.is_none() && r.role == "primary" && r.change == "no detectable change")
+    {
+        let weak = match (r.power.power_at_declared_mde, r.power.mde_relative) {
+            (Some(p), _) => {
+                (p < 0.8).then(|| format!("power to detect the declared MDE is only {:.0}%", p * 100.0))
+            }
+            (None, Some(m)) if m > 0.05 => Some(format!(
+                "it could only detect changes of {:.1}% or more",
+                m * 100.0
+            )),
+            _ => None,
+        };
+        if let Some(why) = weak {
+            out.push(format!(
+                "Low power: \"no detectable change\" for {} (arm {}) says little, because {why}.",
+                r.metric, r.arm
+            ));
+        }
     }
     if results.iter().any(|r| r.change == "no detectable change") {
         out.push("\"No detectable change\" is not evidence of no effect: the interval shows which effects the data cannot rule out.".into());
