@@ -190,3 +190,93 @@ fn demo_readout_shows_the_injected_effect_and_a_clean_aa_test() {
         assert!(p > 0.01, "A/A test row {} has p = {p}", r["metric"]);
     }
 }
+
+fn plumb_in(dir: &Path, args: &[&str]) -> std::process::Output {
+    std::process::Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .arg("--workspace")
+        .arg(dir)
+        .args(args)
+        .output()
+        .unwrap()
+}
+
+#[test]
+fn sample_ratio_mismatch_voids_the_readout_with_exit_code_3() {
+    let ws = handmade_workspace();
+    let catalog = ws.path().join("metrics/handmade.yaml");
+    let text = std::fs::read_to_string(&catalog).unwrap();
+    std::fs::write(
+        &catalog,
+        text.replace(
+            "split: {control: 50, treatment: 50}",
+            "split: {control: 99, treatment: 1}",
+        ),
+    )
+    .unwrap();
+    let out = plumb_in(ws.path(), &["analyze", "exp", "--format", "json"]);
+    assert_eq!(
+        out.status.code(),
+        Some(3),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let doc: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(doc["sample_ratio"]["mismatch"], true);
+    assert_eq!(doc["void"], true);
+    assert!(doc["cautions"][0].as_str().unwrap().contains("void"));
+}
+
+#[test]
+fn cuped_sequential_and_power_on_the_demo() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .args(["demo", "--no-readout", "--shoppers", "30000"])
+        .arg(dir.path())
+        .output()
+        .unwrap();
+    assert!(out.status.success());
+    let json = |args: &[&str]| -> serde_json::Value {
+        let out = plumb_in(dir.path(), args);
+        assert!(
+            out.status.code() == Some(0),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        serde_json::from_slice(&out.stdout).unwrap()
+    };
+    let orders = |doc: &serde_json::Value| doc["results"][0].clone();
+    let cuped = json(&["analyze", "one_page_checkout", "--format", "json"]);
+    let plain = json(&["analyze", "one_page_checkout", "--format", "json", "--no-cuped"]);
+    let seq = json(&["analyze", "one_page_checkout", "--format", "json", "--sequential"]);
+    let (c, p, s) = (orders(&cuped), orders(&plain), orders(&seq));
+    assert_eq!(c["metric"], "orders");
+    assert!(c["cuped"]["theta"].as_f64().unwrap() > 0.0);
+    assert!(c["cuped"]["variance_reduction"].as_f64().unwrap() > 0.0);
+    assert!(p["cuped"].is_null());
+    let width = |r: &serde_json::Value| {
+        r["difference"]["ci_high"].as_f64().unwrap() - r["difference"]["ci_low"].as_f64().unwrap()
+    };
+    assert!(width(&c) < width(&p), "CUPED narrows the interval");
+    assert!(width(&s) > width(&c), "always-valid intervals are wider");
+    assert_eq!(seq["sequential"], true);
+    assert_eq!(c["family"], "primary (Holm)");
+    assert!(
+        c["difference"]["adjusted_p_value"].as_f64().unwrap() >= c["difference"]["p_value"].as_f64().unwrap()
+    );
+    assert!(c["power"]["mde"].as_f64().unwrap() > 0.0);
+
+    let power = json(&[
+        "power", "orders", "--mde", "5%", "--days", "14", "--format", "json",
+    ]);
+    let per_arm = power["units_per_arm"].as_array().unwrap();
+    assert_eq!(per_arm.len(), 2);
+    assert!(power["days"].as_f64().unwrap() > 0.0);
+    assert!(power["history"]["sd"].as_f64().unwrap() > 0.0);
+    // The plan must be consistent with the normal-approximation formula on the history's sd.
+    let (mean, sd) = (
+        power["history"]["mean"].as_f64().unwrap(),
+        power["history"]["sd"].as_f64().unwrap(),
+    );
+    let want = plumb::stats::power::total_units(0.05 * mean, sd, 0.05, 0.8, 0.5);
+    assert!((power["total_units"].as_f64().unwrap() - want).abs() < 1e-6 * want);
+}

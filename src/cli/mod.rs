@@ -79,6 +79,38 @@ pub enum Command {
         #[arg(long)]
         sequential: bool,
     },
+    /// Units and days an experiment needs to detect a change in a metric, from history.
+    Power {
+        metric: String,
+        /// Smallest relative change worth detecting, e.g. `2%`.
+        #[arg(long)]
+        mde: String,
+        #[arg(long, default_value_t = 0.05)]
+        alpha: f64,
+        /// Target power.
+        #[arg(long, default_value_t = 0.8)]
+        power: f64,
+        /// Planned split, control first, e.g. `50,50` or `34,33,33`.
+        #[arg(long, value_delimiter = ',', default_value = "50,50")]
+        split: Vec<f64>,
+        /// Also report what an experiment of this many days could detect.
+        #[arg(long)]
+        days: Option<f64>,
+        /// Units entering per day (default: measured from the exposure log's history).
+        #[arg(long)]
+        units_per_day: Option<f64>,
+        /// Length of the history window, in days.
+        #[arg(long, default_value_t = 14)]
+        history_days: i64,
+        /// End of the history window (default: the latest experiment end on this exposure log).
+        #[arg(long)]
+        until: Option<String>,
+        /// Exposure log whose units form the population (default: the first of the metric's unit).
+        #[arg(long)]
+        exposures: Option<String>,
+        #[arg(long, value_enum, default_value = "table")]
+        format: Format,
+    },
     /// Write the plant-shop demo workspace and print its main readout.
     Demo {
         /// Folder to write (default: ./plumb-demo).
@@ -235,6 +267,11 @@ fn dispatch(args: &Args) -> Result<(), Failure> {
             }
             Ok(())
         }
+        Command::Power { .. } => {
+            let text = power(args)?;
+            emit(&text);
+            Ok(())
+        }
         Command::Demo {
             dir,
             seed,
@@ -369,6 +406,265 @@ fn analyze(
         Format::Json => crate::output::readout_json(&readout),
     };
     Ok((text, blocked))
+}
+
+#[cfg(not(feature = "engine"))]
+fn power(_: &Args) -> Result<String, Failure> {
+    Err(usage(
+        "this plumb was built without the `engine` feature, so it cannot read history locally",
+    ))
+}
+
+/// `plumb power`: the metric's per-unit mean and sd over a past window, computed by the same
+/// compiled readout SQL (a one-arm pseudo-experiment of every unit exposed in the window), then
+/// the units and days needed for the MDE under the planned split, and under other splits.
+#[cfg(feature = "engine")]
+fn power(args: &Args) -> Result<String, Failure> {
+    use crate::execute::duckdb::Engine;
+    use crate::ir::{self, Role, Source};
+    use crate::stats::power as pw;
+    use crate::time::Timestamp;
+    let Command::Power {
+        metric,
+        mde,
+        alpha,
+        power,
+        split,
+        days,
+        units_per_day,
+        history_days,
+        until,
+        exposures,
+        format,
+    } = &args.command
+    else {
+        unreachable!("dispatched on Command::Power");
+    };
+    let mde_rel = mde
+        .trim()
+        .strip_suffix('%')
+        .and_then(|p| p.trim().parse::<f64>().ok())
+        .filter(|p| *p > 0.0)
+        .map(|p| p / 100.0)
+        .ok_or_else(|| {
+            usage(format!(
+                "--mde must be a positive percentage such as 2%, got `{mde}`"
+            ))
+        })?;
+    if !(*alpha > 0.0 && *alpha < 1.0 && *power > 0.0 && *power < 1.0) {
+        return Err(usage("--alpha and --power must be between 0 and 1"));
+    }
+    if split.len() < 2 || split.iter().any(|s| !(*s > 0.0)) {
+        return Err(usage(
+            "--split needs at least two positive shares, control first, e.g. 50,50",
+        ));
+    }
+    if *history_days < 1 {
+        return Err(usage("--history-days must be at least 1"));
+    }
+    let mut sources = SourceMap::new();
+    let (ws, _) = open(&workspace_dir(args), &mut sources)?;
+    let mut catalog = ws.catalog.clone();
+    let metric_id = catalog.metric(metric).ok_or_else(|| {
+        let names: Vec<&str> = catalog.metrics.iter().map(|m| m.name.as_str()).collect();
+        let hint = did_you_mean(metric, names.iter().copied())
+            .unwrap_or_else(|| format!("metrics in this catalog: {}", names.join(", ")));
+        usage(format!("unknown metric `{metric}`; {hint}"))
+    })?;
+    let unit = catalog.metrics[metric_id].unit;
+    let log_id = match exposures {
+        Some(name) => catalog
+            .exposure_logs
+            .iter()
+            .position(|l| &l.name == name)
+            .ok_or_else(|| usage(format!("unknown exposure log `{name}`")))?,
+        None => catalog
+            .exposure_logs
+            .iter()
+            .position(|l| l.unit == unit)
+            .ok_or_else(|| {
+                usage(format!(
+                    "no exposure log counts {}s; pass --exposures NAME",
+                    catalog.units[unit].name
+                ))
+            })?,
+    };
+    let end = match until {
+        Some(t) => Timestamp::parse(t).map_err(usage)?,
+        None => catalog
+            .experiments
+            .iter()
+            .filter(|e| e.exposures == log_id)
+            .map(|e| e.end)
+            .max()
+            .ok_or_else(|| usage("no experiment uses this exposure log; pass --until DATE"))?,
+    };
+    let start = end.plus(-history_days * 86_400);
+    let log = catalog.exposure_logs[log_id].clone();
+    let dialect = load_dialect(args, "duckdb")?;
+    // Every unit's first exposure in the window, as one arm of a pseudo-experiment.
+    let q = |c: &str| format!("\"{}\"", c.replace('"', "\"\""));
+    let from = match &log.source {
+        Source::Table(parts) => parts.iter().map(|p| q(p)).collect::<Vec<_>>().join("."),
+        Source::Query(query) => format!("({query}) AS history_source"),
+    };
+    let history_sql = format!(
+        "SELECT {id} AS unit_key, 'history' AS experiment_key, 'all' AS arm_key, min({time}) AS first_time \
+         FROM {from} WHERE {time} >= TIMESTAMP '{s}' AND {time} < TIMESTAMP '{e}' GROUP BY {id}",
+        id = q(&log.id),
+        time = q(&log.time),
+        s = start.to_sql_string(),
+        e = end.to_sql_string(),
+    );
+    let query = crate::resolve::sql::parse_query(&history_sql).map_err(|e| usage(e.message))?;
+    catalog.exposure_logs.push(ir::ExposureLog {
+        name: "history".into(),
+        unit,
+        source: Source::Query(query),
+        id: "unit_key".into(),
+        time: "first_time".into(),
+        experiment: "experiment_key".into(),
+        arm: "arm_key".into(),
+    });
+    catalog.experiments.push(ir::Experiment {
+        name: "history".into(),
+        description: None,
+        exposures: catalog.exposure_logs.len() - 1,
+        key: "history".into(),
+        control: "all".into(),
+        arms: vec![ir::Arm {
+            name: "all".into(),
+            share: 1.0,
+        }],
+        start,
+        end,
+        metrics: vec![(metric_id, Role::Primary)],
+        covariate_window: 0,
+        segments: vec![],
+        mde: None,
+    });
+    let exp_id = catalog.experiments.len() - 1;
+    let (plan, sql) =
+        crate::compile_experiment(&catalog, exp_id, &[], &dialect).map_err(|e| usage(e.to_string()))?;
+    let spinner = progress(&format!("reading {history_days} days of history for {metric}"));
+    let rows =
+        Engine::open(ws.local_database.as_deref(), &ws.local_tables).and_then(|engine| engine.query(&sql));
+    if let Some(s) = spinner {
+        s.finish_and_clear();
+    }
+    let rows = rows.map_err(|e| usage(e.to_string()))?;
+    let table = crate::execute::stats_table(&plan, &rows).map_err(|e| usage(e.to_string()))?;
+    let row = table.rows.iter().find(|r| r.arm == "all").ok_or_else(|| {
+        usage(format!(
+            "no exposed units between {} and {}",
+            start.to_iso(),
+            end.to_iso()
+        ))
+    })?;
+    let (mean, sd, n) = match &plan.metrics[0].kind {
+        crate::plan::PlannedKind::Mean { column } => {
+            let m = row.columns[column];
+            (m.mean, m.sd(), m.n)
+        }
+        crate::plan::PlannedKind::Ratio {
+            numerator,
+            denominator,
+        } => {
+            let r = crate::stats::RatioMoments {
+                numerator: row.columns[numerator],
+                denominator: row.columns[denominator],
+                cov: row.covariances[&crate::plan::covariance_name(numerator, denominator)],
+            };
+            (
+                r.ratio(),
+                (r.var_of_ratio() * r.numerator.n as f64).sqrt(),
+                r.numerator.n,
+            )
+        }
+    };
+    if !(mean.is_finite() && sd.is_finite() && mean != 0.0) {
+        return Err(usage(format!(
+            "{metric} has mean {mean} and sd {sd} over the history window; a relative MDE needs a nonzero mean"
+        )));
+    }
+    let measured_per_day = row.units as f64 / *history_days as f64;
+    let per_day = units_per_day.unwrap_or(measured_per_day);
+    let delta = mde_rel * mean.abs();
+    let main = pw::plan(delta, sd, *alpha, *power, split, Some(per_day))
+        .ok_or_else(|| usage("cannot plan with these inputs"))?;
+    let alternatives: Vec<(String, pw::Plan)> = [
+        vec![50.0, 50.0],
+        vec![60.0, 40.0],
+        vec![80.0, 20.0],
+        vec![90.0, 10.0],
+    ]
+    .into_iter()
+    .filter(|s| split.len() == 2 && s != split)
+    .filter_map(|s| {
+        let label = format!("{}/{}", s[0], s[1]);
+        pw::plan(delta, sd, *alpha, *power, &s, Some(per_day)).map(|p| (label, p))
+    })
+    .collect();
+    let detectable = days.map(|d| pw::detectable(d * per_day, mean, sd, *alpha, *power, split));
+    if *format == Format::Json {
+        let json = serde_json::json!({
+            "metric": metric,
+            "history": {"start": start.to_iso(), "end": end.to_iso(), "units": n, "mean": mean, "sd": sd},
+            "units_per_day": per_day,
+            "units_per_day_measured": measured_per_day,
+            "mde": mde_rel, "alpha": alpha, "power": power, "split": split,
+            "units_per_arm": main.units_per_arm, "total_units": main.total_units, "days": main.days,
+            "other_splits": alternatives.iter().map(|(l, p)| serde_json::json!({"split": l, "total_units": p.total_units, "days": p.days})).collect::<Vec<_>>(),
+            "detectable_mde_in_days": detectable,
+        });
+        return Ok(serde_json::to_string_pretty(&json).expect("json") + "\n");
+    }
+    let mut out = format!(
+        "Metric {metric}: mean {} and sd {} per unit over {} units exposed {} to {} (same SQL as a readout).\n",
+        crate::output::sig(mean, 4),
+        crate::output::sig(sd, 4),
+        n,
+        start.to_iso(),
+        end.to_iso()
+    );
+    out += &format!(
+        "Traffic: {} units per day{}.\n",
+        crate::output::sig(per_day, 4),
+        if units_per_day.is_some() {
+            " (given)"
+        } else {
+            " (measured from the exposure log)"
+        }
+    );
+    let arms: Vec<String> = main
+        .units_per_arm
+        .iter()
+        .map(|u| format!("{:.0}", u.ceil()))
+        .collect();
+    out += &format!(
+        "To detect a {}% change (alpha {alpha}, power {power}) with split {}: {} units per arm ({} in all), about {:.1} days.\n",
+        crate::output::sig(mde_rel * 100.0, 3),
+        split.iter().map(|s| s.to_string()).collect::<Vec<_>>().join("/"),
+        arms.join(" / "),
+        main.total_units.ceil(),
+        main.days.unwrap_or(f64::NAN)
+    );
+    for (label, p) in &alternatives {
+        out += &format!(
+            "  with a {label} split instead: {:.0} units in all, about {:.1} days.\n",
+            p.total_units.ceil(),
+            p.days.unwrap_or(f64::NAN)
+        );
+    }
+    if let (Some(d), Some(m)) = (days, detectable) {
+        out += &format!(
+            "In {d} days ({:.0} units) it could detect changes of {}% or more.\n",
+            d * per_day,
+            crate::output::sig(m * 100.0, 3)
+        );
+    }
+    out += "Assumes the history window is typical of the experiment period, units independent, and a normal approximation for the difference (enough units per arm). Uneven splits need more units in all because the smaller arm dominates the variance.\n";
+    Ok(out)
 }
 
 /// A spinner on stderr while a query runs, only when stderr is a terminal.

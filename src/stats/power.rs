@@ -75,3 +75,50 @@ pub fn n_t_two_sample(d: f64, alpha: f64, power: f64) -> f64 {
     }
     0.5 * (lo + hi)
 }
+
+/// A sample-size plan for one metric: what an experiment needs to detect `mde`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Plan {
+    /// Units needed per arm, in the order of `shares` (control first).
+    pub units_per_arm: Vec<f64>,
+    pub total_units: f64,
+    /// Days at `units_per_day`, if known.
+    pub days: Option<f64>,
+}
+
+/// Units needed so that every treatment arm's difference from control (the first share) of
+/// absolute size `delta` is detected with `power`, each comparison at level `alpha`:
+/// SE = σ·sqrt(1/(s_c N) + 1/(s_t N)), so N = (z₁₋α/₂ + z_power)² σ² (1/s_c + 1/s_t) / δ² for
+/// the smallest treatment share s_t (normal approximation, as in `total_units`).
+pub fn plan(
+    delta: f64,
+    sd: f64,
+    alpha: f64,
+    power: f64,
+    shares: &[f64],
+    units_per_day: Option<f64>,
+) -> Option<Plan> {
+    let total: f64 = shares.iter().sum();
+    if shares.len() < 2 || total <= 0.0 || delta == 0.0 || !sd.is_finite() {
+        return None;
+    }
+    let s: Vec<f64> = shares.iter().map(|x| x / total).collect();
+    let k = z_quantile(1.0 - alpha / 2.0) + z_quantile(power);
+    let worst = s[1..].iter().cloned().fold(f64::INFINITY, f64::min);
+    let n = (k * sd / delta).powi(2) * (1.0 / s[0] + 1.0 / worst);
+    Some(Plan {
+        units_per_arm: s.iter().map(|x| x * n).collect(),
+        total_units: n,
+        days: units_per_day.filter(|u| *u > 0.0).map(|u| n / u),
+    })
+}
+
+/// The smallest relative effect detectable with `n_total` units split by `shares`, for a
+/// metric with mean `mean` and sd `sd`.
+pub fn detectable(n_total: f64, mean: f64, sd: f64, alpha: f64, power: f64, shares: &[f64]) -> f64 {
+    let total: f64 = shares.iter().sum();
+    let s: Vec<f64> = shares.iter().map(|x| x / total).collect();
+    let worst = s[1..].iter().cloned().fold(f64::INFINITY, f64::min);
+    let se = sd * (1.0 / (s[0] * n_total) + 1.0 / (worst * n_total)).sqrt();
+    mde(se, alpha, power) / mean.abs()
+}
