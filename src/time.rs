@@ -186,3 +186,86 @@ mod tests {
         assert_eq!(format_duration(36 * 3600), "36h");
     }
 }
+
+/// A reporting period length.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Grain {
+    Hour,
+    Day,
+    /// Weeks start on Monday (ISO 8601).
+    Week,
+    Month,
+}
+
+impl Grain {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Grain::Hour => "hour",
+            Grain::Day => "day",
+            Grain::Week => "week",
+            Grain::Month => "month",
+        }
+    }
+
+    /// The start of the period holding `t`.
+    pub fn truncate(self, t: Timestamp) -> Timestamp {
+        let day = t.0.div_euclid(DAY);
+        match self {
+            Grain::Hour => Timestamp(t.0.div_euclid(3600) * 3600),
+            Grain::Day => Timestamp(day * DAY),
+            // 1970-01-01 was a Thursday: Monday-based weeks start 3 days earlier.
+            Grain::Week => Timestamp(((day + 3).div_euclid(7) * 7 - 3) * DAY),
+            Grain::Month => {
+                let (y, m, _) = civil_from_days(day);
+                Timestamp(days_from_civil(y, m, 1) * DAY)
+            }
+        }
+    }
+
+    /// The start of the period after the one starting at `t`.
+    pub fn next(self, t: Timestamp) -> Timestamp {
+        match self {
+            Grain::Hour => Timestamp(t.0 + 3600),
+            Grain::Day => Timestamp(t.0 + DAY),
+            Grain::Week => Timestamp(t.0 + 7 * DAY),
+            Grain::Month => {
+                let (y, m, _) = civil_from_days(t.0.div_euclid(DAY));
+                let (y, m) = if m == 12 { (y + 1, 1) } else { (y, m + 1) };
+                Timestamp(days_from_civil(y, m, 1) * DAY)
+            }
+        }
+    }
+
+    /// Every period start from the period holding `from` up to (excluding) `to`.
+    pub fn periods(self, from: Timestamp, to: Timestamp) -> Vec<Timestamp> {
+        let mut out = Vec::new();
+        let mut t = self.truncate(from);
+        while t < to {
+            out.push(t);
+            t = self.next(t);
+        }
+        out
+    }
+}
+
+#[cfg(test)]
+mod grain_tests {
+    use super::*;
+
+    #[test]
+    fn truncates_to_calendar_periods() {
+        let t = Timestamp::parse("2026-03-04T15:42:00Z").unwrap(); // a Wednesday
+        assert_eq!(Grain::Hour.truncate(t).to_iso(), "2026-03-04T15:00:00Z");
+        assert_eq!(Grain::Day.truncate(t).to_iso(), "2026-03-04T00:00:00Z");
+        assert_eq!(Grain::Week.truncate(t).to_iso(), "2026-03-02T00:00:00Z");
+        assert_eq!(Grain::Month.truncate(t).to_iso(), "2026-03-01T00:00:00Z");
+        assert_eq!(
+            Grain::Month
+                .next(Timestamp::parse("2026-12-01").unwrap())
+                .to_iso(),
+            "2027-01-01T00:00:00Z"
+        );
+        let weeks = Grain::Week.periods(t, Timestamp::parse("2026-03-20").unwrap());
+        assert_eq!(weeks.len(), 3);
+    }
+}

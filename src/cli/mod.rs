@@ -454,7 +454,7 @@ fn power(args: &Args) -> Result<String, Failure> {
     if !(*alpha > 0.0 && *alpha < 1.0 && *power > 0.0 && *power < 1.0) {
         return Err(usage("--alpha and --power must be between 0 and 1"));
     }
-    if split.len() < 2 || split.iter().any(|s| !(*s > 0.0)) {
+    if split.len() < 2 || split.iter().any(|s| !s.is_finite() || *s <= 0.0) {
         return Err(usage(
             "--split needs at least two positive shares, control first, e.g. 50,50",
         ));
