@@ -38,6 +38,9 @@ impl Catalog {
 pub struct Unit {
     pub name: String,
     pub description: Option<String>,
+    /// Event table whose rows make a unit active in a report period (`active: {events: t}`);
+    /// `None`: the metric's own event table.
+    pub active: Option<EventTableId>,
 }
 
 /// Where rows come from: a table (possibly `schema.table`) or a query.

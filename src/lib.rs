@@ -21,6 +21,7 @@ pub mod load;
 pub mod output;
 pub mod plan;
 pub mod render;
+pub mod report;
 pub mod resolve;
 pub mod source;
 pub mod stats;
@@ -51,6 +52,18 @@ pub fn compile_experiment(
         ))
     })?;
     Ok((plan, sql))
+}
+
+/// Plans, renders and validates a report query (see `plan::plan_report`).
+pub fn compile_report(plan: &plan::ReportPlan, dialect: &Dialect) -> Result<String, DialectError> {
+    let sql = dialect.render_report(plan)?;
+    validate::validate(&sql, &dialect.caps.sqlparser).map_err(|e| {
+        DialectError(format!(
+            "dialect {} produced report SQL that does not parse ({e}); this is a bug in the dialect's templates",
+            dialect.caps.name
+        ))
+    })?;
+    Ok(sql)
 }
 
 /// Statistical choices of a readout (command-line flags).

@@ -137,3 +137,36 @@ experiments:
         );
     }
 }
+
+#[test]
+fn report_queries_parse_in_every_dialect() {
+    let files = vec![(
+        "plant_shop.yaml".to_string(),
+        plumb::demo::CATALOG[0].1.to_string(),
+    )];
+    let mut sources = SourceMap::new();
+    let refs: Vec<(&str, &str)> = files.iter().map(|(p, t)| (p.as_str(), t.as_str())).collect();
+    let (raw, _) = load_catalog_texts(&refs, &mut sources);
+    let catalog = plumb::resolve::resolve(&sources, &raw).unwrap();
+    let metrics: Vec<usize> = ["orders", "avg_basket", "engaged"]
+        .iter()
+        .map(|m| catalog.metric(m).unwrap())
+        .collect();
+    let from = plumb::time::Timestamp::parse("2026-03-01").unwrap();
+    let to = plumb::time::Timestamp::parse("2026-04-01").unwrap();
+    let region = catalog.segments.iter().position(|s| s.name == "region").unwrap();
+    let device = catalog.segments.iter().position(|s| s.name == "device").unwrap();
+    let exp = catalog.experiment("one_page_checkout").unwrap();
+    for name in std::iter::once("generic").chain(builtin_dialects()) {
+        let dialect = Dialect::load(name, None).unwrap();
+        for grain in [plumb::time::Grain::Day, plumb::time::Grain::Week] {
+            for (segment, exposed) in [(None, None), (Some(region), None), (Some(device), Some(exp))] {
+                let plan = plumb::plan::plan_report(&catalog, &metrics, grain, from, to, segment, exposed);
+                let sql = plumb::compile_report(&plan, &dialect).unwrap_or_else(|e| panic!("{name}: {e}"));
+                if name == "generic" && segment.is_none() && grain == plumb::time::Grain::Day {
+                    insta::assert_snapshot!("report__demo__generic", sql);
+                }
+            }
+        }
+    }
+}

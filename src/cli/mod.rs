@@ -44,6 +44,40 @@ pub enum Format {
     Json,
 }
 
+#[derive(Debug, Clone, Copy, ValueEnum, PartialEq, Eq)]
+pub enum ReportFormat {
+    Table,
+    Json,
+    Csv,
+}
+
+#[derive(Debug, Clone, Copy, ValueEnum, PartialEq, Eq)]
+pub enum GrainArg {
+    Hour,
+    Day,
+    Week,
+    Month,
+}
+
+/// Periods and population of a report.
+#[derive(Debug, clap::Args)]
+pub struct ReportWindow {
+    #[arg(long, value_enum, default_value = "day")]
+    pub grain: GrainArg,
+    /// First day (or timestamp) of the report, UTC.
+    #[arg(long)]
+    pub from: Option<String>,
+    /// End of the report (excluded), UTC.
+    #[arg(long)]
+    pub to: Option<String>,
+    /// Slice by this segment (`plumb report` only; `plumb sql` takes --by for experiments).
+    #[arg(long = "by-segment", value_name = "SEGMENT")]
+    pub segment: Option<String>,
+    /// Only the units exposed in this experiment, with metric windows from first exposure.
+    #[arg(long, value_name = "EXPERIMENT")]
+    pub exposed_in: Option<String>,
+}
+
 #[derive(Debug, Subcommand)]
 pub enum Command {
     /// Check the workspace: load, resolve and compile every experiment.
@@ -51,9 +85,16 @@ pub enum Command {
         #[arg(long, value_enum, default_value = "table")]
         format: Format,
     },
-    /// Print the readout SQL of an experiment.
+    /// Print the readout SQL of an experiment (or, with --report, a report's SQL).
     Sql {
-        experiment: String,
+        /// The experiment (omit with --report).
+        #[arg(required_unless_present = "report")]
+        experiment: Option<String>,
+        /// Print the report query of these metrics instead (comma-separated).
+        #[arg(long, value_delimiter = ',', value_name = "METRIC,...")]
+        report: Vec<String>,
+        #[command(flatten)]
+        window: ReportWindow,
         /// Target dialect (default: the workspace's `dialect`).
         #[arg(long)]
         dialect: Option<String>,
@@ -78,6 +119,15 @@ pub enum Command {
         /// Always-valid p-values and intervals (mixture SPRT), for looking every day.
         #[arg(long)]
         sequential: bool,
+    },
+    /// A metric as a time series over the whole population of its unit.
+    Report {
+        #[arg(required = true)]
+        metrics: Vec<String>,
+        #[command(flatten)]
+        window: ReportWindow,
+        #[arg(long, value_enum, default_value = "table")]
+        format: ReportFormat,
     },
     /// Units and days an experiment needs to detect a change in a metric, from history.
     Power {
@@ -231,11 +281,21 @@ fn dispatch(args: &Args) -> Result<(), Failure> {
         Command::Check { format } => check(args, *format),
         Command::Sql {
             experiment,
+            report,
+            window,
             dialect,
             by,
         } => {
             let mut sources = SourceMap::new();
             let (ws, _) = open(&workspace_dir(args), &mut sources)?;
+            if !report.is_empty() {
+                let plan = report_plan(&ws, report, window, by)?;
+                let dialect = load_dialect(args, dialect.as_deref().unwrap_or(&ws.dialect))?;
+                let sql = crate::compile_report(&plan, &dialect).map_err(|e| usage(e.to_string()))?;
+                emit(&sql);
+                return Ok(());
+            }
+            let experiment = experiment.as_deref().unwrap_or_default();
             let id = find_experiment(&ws, experiment)?;
             let by = find_segments(&ws, by)?;
             let dialect = load_dialect(args, dialect.as_deref().unwrap_or(&ws.dialect))?;
@@ -265,6 +325,15 @@ fn dispatch(args: &Args) -> Result<(), Failure> {
             if blocked {
                 return Err(Failure::Reported(EXIT_CHECKS));
             }
+            Ok(())
+        }
+        Command::Report {
+            metrics,
+            window,
+            format,
+        } => {
+            let text = report(args, metrics, window, *format)?;
+            emit(&text);
             Ok(())
         }
         Command::Power { .. } => {
@@ -406,6 +475,121 @@ fn analyze(
         Format::Json => crate::output::readout_json(&readout),
     };
     Ok((text, blocked))
+}
+
+/// Resolves report arguments into a report plan.
+fn report_plan(
+    ws: &Workspace,
+    metrics: &[String],
+    window: &ReportWindow,
+    by: &[String],
+) -> Result<crate::plan::ReportPlan, Failure> {
+    use crate::time::{Grain, Timestamp};
+    let ids = metrics
+        .iter()
+        .map(|m| {
+            ws.catalog.metric(m).ok_or_else(|| {
+                let names: Vec<&str> = ws.catalog.metrics.iter().map(|m| m.name.as_str()).collect();
+                let hint = did_you_mean(m, names.iter().copied())
+                    .unwrap_or_else(|| format!("metrics in this catalog: {}", names.join(", ")));
+                usage(format!("unknown metric `{m}`; {hint}"))
+            })
+        })
+        .collect::<Result<Vec<_>, _>>()?;
+    let exposed = window
+        .exposed_in
+        .as_deref()
+        .map(|e| find_experiment(ws, e))
+        .transpose()?;
+    let exp = exposed.map(|id| &ws.catalog.experiments[id]);
+    let parse = |flag: &str, v: &Option<String>, default: Option<Timestamp>| -> Result<Timestamp, Failure> {
+        match (v, default) {
+            (Some(t), _) => Timestamp::parse(t).map_err(|e| usage(format!("{flag}: {e}"))),
+            (None, Some(d)) => Ok(d),
+            (None, None) => Err(usage(format!("{flag} is required (e.g. {flag} 2026-03-01)"))),
+        }
+    };
+    let from = parse("--from", &window.from, exp.map(|e| e.start))?;
+    let to = parse("--to", &window.to, exp.map(|e| e.end))?;
+    if to <= from {
+        return Err(usage("--to must be after --from"));
+    }
+    let grain = match window.grain {
+        GrainArg::Hour => Grain::Hour,
+        GrainArg::Day => Grain::Day,
+        GrainArg::Week => Grain::Week,
+        GrainArg::Month => Grain::Month,
+    };
+    let periods = grain.periods(from, to).len();
+    if periods > 100_000 {
+        return Err(usage(format!(
+            "{periods} periods is too many; use a coarser --grain"
+        )));
+    }
+    let mut segments = find_segments(ws, by)?;
+    if let Some(s) = &window.segment {
+        segments.extend(find_segments(ws, std::slice::from_ref(s))?);
+    }
+    if segments.len() > 1 {
+        return Err(usage("a report slices by one segment at a time"));
+    }
+    let segment = segments.first().copied();
+    if let Some(s) = segment
+        && matches!(
+            ws.catalog.segments[s].kind,
+            crate::ir::SegmentKind::FromExposure(_)
+        )
+        && exposed.is_none()
+    {
+        return Err(usage(format!(
+            "segment `{}` is read from the exposure log, so it needs --exposed-in EXPERIMENT",
+            ws.catalog.segments[s].name
+        )));
+    }
+    Ok(crate::plan::plan_report(
+        &ws.catalog,
+        &ids,
+        grain,
+        from,
+        to,
+        segment,
+        exposed,
+    ))
+}
+
+#[cfg(not(feature = "engine"))]
+fn report(_: &Args, _: &[String], _: &ReportWindow, _: ReportFormat) -> Result<String, Failure> {
+    Err(usage(
+        "this plumb was built without the `engine` feature, so it cannot run SQL locally",
+    ))
+}
+
+#[cfg(feature = "engine")]
+fn report(
+    args: &Args,
+    metrics: &[String],
+    window: &ReportWindow,
+    format: ReportFormat,
+) -> Result<String, Failure> {
+    use crate::execute::duckdb::Engine;
+    let mut sources = SourceMap::new();
+    let (ws, _) = open(&workspace_dir(args), &mut sources)?;
+    let plan = report_plan(&ws, metrics, window, &[])?;
+    let dialect = load_dialect(args, "duckdb")?;
+    let sql = crate::compile_report(&plan, &dialect).map_err(|e| usage(e.to_string()))?;
+    let spinner = progress("running the report on local DuckDB");
+    let rows =
+        Engine::open(ws.local_database.as_deref(), &ws.local_tables).and_then(|engine| engine.query(&sql));
+    if let Some(s) = spinner {
+        s.finish_and_clear();
+    }
+    let rows = rows.map_err(|e| usage(e.to_string()))?;
+    let rows = crate::report::assemble(&plan, &rows).map_err(|e| usage(e.to_string()))?;
+    Ok(match format {
+        ReportFormat::Table => crate::report::text_output(&rows),
+        ReportFormat::Json => serde_json::to_string_pretty(&rows).expect("json") + "\n",
+        ReportFormat::Csv => crate::report::csv_output(&rows),
+    })
 }
 
 #[cfg(not(feature = "engine"))]

@@ -149,6 +149,14 @@ fn cell(v: Value) -> Result<Cell, String> {
         Value::Float(x) => Cell::Number(x.into()),
         Value::Double(x) => Cell::Number(x),
         Value::Text(t) => Cell::Text(t),
+        // Timestamps (report periods) as seconds since the epoch, UTC.
+        Value::Timestamp(unit, v) => Cell::Number(match unit {
+            duckdb::types::TimeUnit::Second => v as f64,
+            duckdb::types::TimeUnit::Millisecond => (v.div_euclid(1_000)) as f64,
+            duckdb::types::TimeUnit::Microsecond => (v.div_euclid(1_000_000)) as f64,
+            duckdb::types::TimeUnit::Nanosecond => (v.div_euclid(1_000_000_000)) as f64,
+        }),
+        Value::Date32(days) => Cell::Number(f64::from(days) * 86_400.0),
         other => return Err(format!("unexpected value type {other:?}")),
     })
 }

@@ -88,6 +88,13 @@ pub struct LocalData {
 pub struct Unit {
     pub name: Option<String>,
     pub description: Option<String>,
+    /// What makes a unit active in a report period: `{events: visits}`.
+    pub active: Option<Active>,
+}
+
+#[derive(Debug, Clone, Deserialize, Serialize)]
+pub struct Active {
+    pub events: Option<String>,
 }
 
 #[derive(Debug, Clone, Deserialize, Serialize)]
@@ -170,7 +177,7 @@ pub struct Experiment {
 
 /// The top-level lists a catalog file may hold, with the keys each item accepts.
 pub const KINDS: &[(&str, &[&str])] = &[
-    ("units", &["name", "description"]),
+    ("units", &["name", "description", "active"]),
     (
         "event_tables",
         &[

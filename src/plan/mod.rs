@@ -352,6 +352,203 @@ fn push_aggregate(
     });
 }
 
+/// The experiment whose exposed units a report is restricted to (`--exposed-in`).
+#[derive(Debug, Clone)]
+pub struct ExposedIn {
+    pub experiment: String,
+    pub exposures: ExposureScan,
+    pub start: Timestamp,
+    pub end: Timestamp,
+}
+
+/// A metric of a report: which scan columns give its per-unit, per-period values.
+#[derive(Debug, Clone)]
+pub enum ReportMetricKind {
+    Value {
+        scan: usize,
+        column: String,
+    },
+    Ratio {
+        numerator: (usize, String),
+        denominator: (usize, String),
+    },
+}
+
+#[derive(Debug, Clone)]
+pub struct ReportMetric {
+    pub name: String,
+    pub kind: ReportMetricKind,
+    /// Scan whose (unit, period) groups are the metric's active units.
+    pub active_scan: usize,
+}
+
+/// A time series query over the whole population of a unit (or the units exposed in one
+/// experiment): per period, active units and the metric totals. Built from the same metric
+/// definitions, scans and aggregates as the readout query.
+#[derive(Debug, Clone)]
+pub struct ReportPlan {
+    pub metrics: Vec<ReportMetric>,
+    pub scans: Vec<EventScan>,
+    pub grain: crate::time::Grain,
+    pub from: Timestamp,
+    pub to: Timestamp,
+    pub exposed: Option<ExposedIn>,
+    pub segment: Option<PlannedSegment>,
+}
+
+/// Plans a report of `metrics` from `from` to `to` by `grain`, optionally sliced by a segment
+/// and restricted to the units exposed in an experiment (then metric windows apply relative to
+/// each unit's first exposure, as in the readout).
+pub fn plan_report(
+    catalog: &Catalog,
+    metrics: &[ir::MetricId],
+    grain: crate::time::Grain,
+    from: Timestamp,
+    to: Timestamp,
+    segment: Option<ir::SegmentId>,
+    exposed_in: Option<ir::ExperimentId>,
+) -> ReportPlan {
+    let exposed = exposed_in.map(|id| {
+        let exp = &catalog.experiments[id];
+        let log = &catalog.exposure_logs[exp.exposures];
+        ExposedIn {
+            experiment: exp.name.clone(),
+            exposures: ExposureScan {
+                source: log.source.clone(),
+                id: log.id.clone(),
+                time: log.time.clone(),
+                experiment_column: log.experiment.clone(),
+                arm_column: log.arm.clone(),
+                key: exp.key.clone(),
+            },
+            start: exp.start,
+            end: exp.end,
+        }
+    });
+    let mut plan = ReportPlan {
+        metrics: Vec::new(),
+        scans: Vec::new(),
+        grain,
+        from,
+        to,
+        exposed,
+        segment: None,
+    };
+    for &id in metrics {
+        let m = &catalog.metrics[id];
+        let unit = &catalog.units[m.unit];
+        let (kind, default_active) = match &m.kind {
+            MetricKind::Events { table, .. } => {
+                let scan = report_column(catalog, &mut plan, id);
+                (
+                    ReportMetricKind::Value {
+                        scan,
+                        column: m.name.clone(),
+                    },
+                    *table,
+                )
+            }
+            MetricKind::Ratio {
+                numerator,
+                denominator,
+            } => {
+                let ns = report_column(catalog, &mut plan, *numerator);
+                let ds = report_column(catalog, &mut plan, *denominator);
+                let table = match &catalog.metrics[*numerator].kind {
+                    MetricKind::Events { table, .. } => *table,
+                    MetricKind::Ratio { .. } => 0,
+                };
+                (
+                    ReportMetricKind::Ratio {
+                        numerator: (ns, catalog.metrics[*numerator].name.clone()),
+                        denominator: (ds, catalog.metrics[*denominator].name.clone()),
+                    },
+                    table,
+                )
+            }
+        };
+        let active_table = unit.active.unwrap_or(default_active);
+        let active_scan = report_scan(catalog, &mut plan, active_table);
+        plan.metrics.push(ReportMetric {
+            name: m.name.clone(),
+            kind,
+            active_scan,
+        });
+    }
+    if let Some(id) = segment {
+        let s = &catalog.segments[id];
+        let kind = match &s.kind {
+            SegmentKind::FromExposure(column) => PlannedSegmentKind::Exposure {
+                column: column.clone(),
+            },
+            SegmentKind::Attribute {
+                source,
+                id,
+                value,
+                time,
+                ..
+            } => PlannedSegmentKind::Attribute {
+                source: source.clone(),
+                id: id.clone(),
+                value: Box::new(qualify(value, SEGMENT_ALIAS)),
+                time: time.clone(),
+            },
+        };
+        plan.segment = Some(PlannedSegment {
+            name: s.name.clone(),
+            column: format!("segment__{}", s.name),
+            kind,
+        });
+    }
+    plan
+}
+
+/// The scan of event table `table` in a report (created on first use).
+fn report_scan(catalog: &Catalog, plan: &mut ReportPlan, table: ir::EventTableId) -> usize {
+    let t = &catalog.event_tables[table];
+    if let Some(i) = plan.scans.iter().position(|s| s.table == t.name) {
+        return i;
+    }
+    plan.scans.push(EventScan {
+        name: format!("scan_{}", t.name),
+        table: t.name.clone(),
+        source: t.source.clone(),
+        id: t.id.clone(),
+        time: t.time.clone(),
+        filter: t.filter.as_ref().map(|f| qualify(f, EVENT_ALIAS)),
+        earliest_offset: 0,
+        aggregates: Vec::new(),
+    });
+    plan.scans.len() - 1
+}
+
+/// Adds an event metric's aggregate to its table's report scan; returns the scan index.
+fn report_column(catalog: &Catalog, plan: &mut ReportPlan, metric: ir::MetricId) -> usize {
+    let m = &catalog.metrics[metric];
+    let MetricKind::Events {
+        table,
+        aggregation,
+        value,
+        filter,
+        window,
+        ..
+    } = &m.kind
+    else {
+        return 0;
+    };
+    let scan = report_scan(catalog, plan, *table);
+    if !plan.scans[scan].aggregates.iter().any(|a| a.column == m.name) {
+        plan.scans[scan].aggregates.push(Aggregate {
+            column: m.name.clone(),
+            aggregation: *aggregation,
+            value: value.as_deref().map(|v| qualify(v, EVENT_ALIAS)),
+            filter: filter.as_deref().map(|f| qualify(f, EVENT_ALIAS)),
+            window: *window,
+        });
+    }
+    scan
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

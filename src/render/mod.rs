@@ -12,7 +12,7 @@
 //! [`Dialect::ident`] / [`Dialect::literal`]; templates never quote by hand.
 
 use crate::ir::{Aggregation, Cap, Source};
-use crate::plan::{Aggregate, EventScan, ExperimentPlan, PlannedSegmentKind};
+use crate::plan::{Aggregate, EventScan, ExperimentPlan, PlannedSegmentKind, ReportMetricKind, ReportPlan};
 use crate::time::Timestamp;
 use minijinja::{Environment, UndefinedBehavior, context};
 use serde::{Deserialize, Serialize};
@@ -32,6 +32,16 @@ const BUILTIN: &[(&str, &str, &str)] = &[
         "generic",
         "experiment.sql.j2",
         include_str!("../../dialects/generic/experiment.sql.j2"),
+    ),
+    (
+        "generic",
+        "exposures.sql.j2",
+        include_str!("../../dialects/generic/exposures.sql.j2"),
+    ),
+    (
+        "generic",
+        "report.sql.j2",
+        include_str!("../../dialects/generic/report.sql.j2"),
     ),
     (
         "duckdb",
@@ -71,7 +81,7 @@ const BUILTIN: &[(&str, &str, &str)] = &[
 ];
 
 /// Templates a dialect consists of; each falls back to the generic one.
-const TEMPLATES: &[&str] = &["experiment.sql.j2"];
+const TEMPLATES: &[&str] = &["experiment.sql.j2", "exposures.sql.j2", "report.sql.j2"];
 
 /// Names of the built-in target dialects (the generic baseline excluded).
 pub fn builtin_dialects() -> Vec<&'static str> {
@@ -111,6 +121,7 @@ pub struct Capabilities {
     pub covar_samp: String,
     pub percentile: String,
     pub backslash_escapes: bool,
+    pub date_trunc: String,
 }
 
 /// Partial capabilities as a dialect folder writes them.
@@ -130,6 +141,7 @@ struct CapabilitiesOverride {
     covar_samp: Option<String>,
     percentile: Option<String>,
     backslash_escapes: Option<bool>,
+    date_trunc: Option<String>,
 }
 
 /// A problem with a dialect's files (not with the catalog).
@@ -204,7 +216,8 @@ impl Dialect {
                 add_interval,
                 covar_samp,
                 percentile,
-                backslash_escapes
+                backslash_escapes,
+                date_trunc
             );
         }
         caps.name = name.to_string();
@@ -224,6 +237,7 @@ impl Dialect {
             ("add_interval", &caps.add_interval),
             ("covar_samp", &caps.covar_samp),
             ("percentile", &caps.percentile),
+            ("date_trunc", &caps.date_trunc),
         ] {
             snippets
                 .add_template_owned(key, text.clone())
@@ -330,20 +344,20 @@ impl Dialect {
     }
 
     /// A conditional aggregate: `agg` over rows where `cond` holds.
-    fn aggregate(&self, agg: &Aggregate, cond: &str) -> String {
+    fn aggregate(&self, agg: &Aggregate, cond: Option<&str>) -> String {
         let value = agg.value.as_ref().map(|v| self.fragment(v)).unwrap_or_default();
         let f = self.caps.filter_clause;
-        let count = if f {
-            format!("count(*) FILTER (WHERE {cond})")
-        } else {
-            format!("sum(CASE WHEN {cond} THEN 1 ELSE 0 END)")
+        let count = match cond {
+            None => "count(*)".to_string(),
+            Some(c) if f => format!("count(*) FILTER (WHERE {c})"),
+            Some(c) => format!("sum(CASE WHEN {c} THEN 1 ELSE 0 END)"),
         };
         let over = |func: &str, distinct: bool| {
             let d = if distinct { "DISTINCT " } else { "" };
-            if f {
-                format!("{func}({d}{value}) FILTER (WHERE {cond})")
-            } else {
-                format!("{func}({d}CASE WHEN {cond} THEN {value} END)")
+            match cond {
+                None => format!("{func}({d}{value})"),
+                Some(c) if f => format!("{func}({d}{value}) FILTER (WHERE {c})"),
+                Some(c) => format!("{func}({d}CASE WHEN {c} THEN {value} END)"),
             }
         };
         match agg.aggregation {
@@ -357,23 +371,34 @@ impl Dialect {
         }
     }
 
-    fn scan_aggregate(&self, scan: &EventScan, agg: &Aggregate) -> Result<String, DialectError> {
+    /// The aggregate of `agg` in `scan`; `windowed`: only events inside the window relative to
+    /// the unit's first exposure count (readouts, and reports restricted to an experiment).
+    fn scan_aggregate(
+        &self,
+        scan: &EventScan,
+        agg: &Aggregate,
+        windowed: bool,
+    ) -> Result<String, DialectError> {
         let t = format!("e.{}", self.ident(&scan.time));
-        let mut conds = vec![format!(
-            "{t} >= {}",
-            self.add_seconds("x.first_exposed_at", agg.window.start)?
-        )];
-        if let Some(w_end) = agg.window.end {
+        let mut conds = Vec::new();
+        if windowed {
             conds.push(format!(
-                "{t} < {}",
-                self.add_seconds("x.first_exposed_at", w_end)?
+                "{t} >= {}",
+                self.add_seconds("x.first_exposed_at", agg.window.start)?
             ));
+            if let Some(w_end) = agg.window.end {
+                conds.push(format!(
+                    "{t} < {}",
+                    self.add_seconds("x.first_exposed_at", w_end)?
+                ));
+            }
         }
         // The experiment cut-off is applied once, in the scan's WHERE.
         if let Some(f) = &agg.filter {
             conds.push(format!("({})", self.fragment(f)));
         }
-        Ok(self.aggregate(agg, &conds.join(" AND ")))
+        let cond = conds.join(" AND ");
+        Ok(self.aggregate(agg, (!conds.is_empty()).then_some(cond.as_str())))
     }
 
     /// Renders the readout query of one experiment.
@@ -391,7 +416,7 @@ impl Dialect {
             let mut aggregates = Vec::new();
             for agg in &scan.aggregates {
                 aggregates.push(context! {
-                    sql => self.scan_aggregate(scan, agg)?,
+                    sql => self.scan_aggregate(scan, agg, true)?,
                     column => self.ident(&agg.column),
                 });
             }
@@ -506,6 +531,109 @@ impl Dialect {
             attribute_segments => attribute_segments,
         };
         self.render_template("experiment.sql.j2", ctx)
+    }
+
+    /// Renders a report query (long format: metric, part, period_start, segment_value, units,
+    /// total). Parts: `value`, `numerator`, `denominator`, and `active` (units active in the
+    /// period, whose `total` counts their event rows).
+    pub fn render_report(&self, plan: &ReportPlan) -> Result<String, DialectError> {
+        let windowed = plan.exposed.is_some();
+        let mut scans = Vec::new();
+        for scan in &plan.scans {
+            let mut aggregates = Vec::new();
+            for agg in &scan.aggregates {
+                aggregates.push(context! {
+                    sql => self.scan_aggregate(scan, agg, windowed)?,
+                    column => self.ident(&agg.column),
+                });
+            }
+            let time = self.ident(&scan.time);
+            scans.push(context! {
+                name => scan.name,
+                source => self.source(&scan.source),
+                id => self.ident(&scan.id),
+                time => time,
+                period => self.snippet("date_trunc", context! { grain => plan.grain.as_str(), expr => format!("e.{time}") })?,
+                filter => scan.filter.as_ref().map(|f| self.fragment(f)),
+                aggregates => aggregates,
+            });
+        }
+        let mut rows = Vec::new();
+        let mut names = Vec::new();
+        for m in &plan.metrics {
+            names.push(m.name.clone());
+            let mut row = |part: &str, scan: usize, column: String| {
+                rows.push(context! {
+                    metric => self.literal(&m.name),
+                    part => self.literal(part),
+                    scan => plan.scans[scan].name.clone(),
+                    column => column,
+                });
+            };
+            match &m.kind {
+                ReportMetricKind::Value { scan, column } => row("value", *scan, self.ident(column)),
+                ReportMetricKind::Ratio {
+                    numerator,
+                    denominator,
+                } => {
+                    row("numerator", numerator.0, self.ident(&numerator.1));
+                    row("denominator", denominator.0, self.ident(&denominator.1));
+                }
+            }
+            row("active", m.active_scan, "event_rows".into());
+        }
+        let mut exposure_segments = Vec::new();
+        let mut attribute_segments = Vec::new();
+        let segment = plan.segment.as_ref().map(|seg| context! { sql => match &seg.kind {
+                PlannedSegmentKind::Exposure { column: source } => {
+                    let column = self.ident(&seg.column);
+                    exposure_segments.push(context! { column => column, source_column => self.ident(source) });
+                    format!("x.{column}")
+                }
+                PlannedSegmentKind::Attribute { source, id, value, time } => {
+                    let cte = format!("segment_{}", seg.name);
+                    attribute_segments.push(context! {
+                        cte => cte,
+                        source => self.source(source),
+                        id => self.ident(id),
+                        value => self.fragment(value),
+                        time => if windowed { time.as_ref().map(|t| self.ident(t)) } else { None },
+                    });
+                    format!("{cte}.segment_value")
+                }
+            }});
+        let exposures = plan.exposed.as_ref().map(|x| {
+            context! {
+                source => self.source(&x.exposures.source),
+                id => self.ident(&x.exposures.id),
+                time => self.ident(&x.exposures.time),
+                arm => self.ident(&x.exposures.arm_column),
+                experiment => self.ident(&x.exposures.experiment_column),
+                key => self.literal(&x.exposures.key),
+            }
+        });
+        let (start, end) = match &plan.exposed {
+            Some(x) => (Some(self.timestamp(x.start)?), Some(self.timestamp(x.end)?)),
+            None => (None, None),
+        };
+        let ctx = context! {
+            metric_names => names.join(", "),
+            grain => plan.grain.as_str(),
+            dialect => self.caps.name,
+            float_type => self.caps.float_type,
+            string_type => self.caps.string_type,
+            from => self.timestamp(plan.from)?,
+            to => self.timestamp(plan.to)?,
+            start => start,
+            end => end,
+            exposures => exposures,
+            exposure_segments => exposure_segments,
+            attribute_segments => attribute_segments,
+            segment => segment,
+            scans => scans,
+            rows => rows,
+        };
+        self.render_template("report.sql.j2", ctx)
     }
 
     fn render_template(&self, name: &str, ctx: minijinja::Value) -> Result<String, DialectError> {

@@ -439,6 +439,7 @@ impl Resolver<'_> {
             out.units.push(ir::Unit {
                 name: item.value.name.clone().unwrap_or_default(),
                 description: item.value.description.clone(),
+                active: None,
             });
         }
 
@@ -464,6 +465,37 @@ impl Resolver<'_> {
                 filter,
                 columns: v.columns.clone(),
             });
+        }
+
+        for (u, item) in raw.units.iter().enumerate() {
+            let Some(active) = &item.value.active else {
+                continue;
+            };
+            let Some(events) = &active.events else {
+                self.push(
+                    Diagnostic::error("E010", "`active` needs `events`")
+                        .at(item.value_span("active"))
+                        .hint("write `active: {events: visits}`: any row of that event table makes a unit active"),
+                );
+                continue;
+            };
+            let span = item
+                .node
+                .at(&[
+                    crate::load::yaml::Seg::Key("active".into()),
+                    crate::load::yaml::Seg::Key("events".into()),
+                ])
+                .map(|n| Span::new(item.file, n.range.clone()));
+            if let Some(t) = self.reference(&table_names, events, "event table", span.clone()) {
+                if out.event_tables[t].unit != u {
+                    self.push(
+                        Diagnostic::error("E013", format!("event table `{events}` counts another unit"))
+                            .at(span)
+                            .hint("a unit's activity must come from an event table of that unit"),
+                    );
+                }
+                out.units[u].active = Some(t);
+            }
         }
 
         for item in &raw.exposure_logs {

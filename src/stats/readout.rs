@@ -208,7 +208,7 @@ pub struct PowerOut {
     pub power_at_declared_mde: Option<f64>,
 }
 
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct SegmentRef {
     pub name: String,
     /// Null when the unit has no value for the segment.
