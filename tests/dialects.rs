@@ -140,7 +140,7 @@ experiments:
 
 #[test]
 fn report_queries_parse_in_every_dialect() {
-    let files = vec![(
+    let files = [(
         "plant_shop.yaml".to_string(),
         plumb::demo::CATALOG[0].1.to_string(),
     )];

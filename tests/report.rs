@@ -127,7 +127,7 @@ fn report_command_fills_gaps_and_writes_json_and_csv() {
     .unwrap();
     let rows = json.as_array().unwrap();
     assert_eq!(rows.len(), 2 * 11, "11 days for each of 2 metrics");
-    let last = rows.iter().filter(|r| r["metric"] == "orders").last().unwrap();
+    let last = rows.iter().rfind(|r| r["metric"] == "orders").unwrap();
     assert_eq!(last["period_start"], "2026-04-04T00:00:00Z");
     assert_eq!(last["units"], 0);
     assert_eq!(last["total"], 0.0);
