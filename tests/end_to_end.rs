@@ -264,6 +264,29 @@ fn cuped_sequential_and_power_on_the_demo() {
         c["difference"]["adjusted_p_value"].as_f64().unwrap() >= c["difference"]["p_value"].as_f64().unwrap()
     );
     assert!(c["power"]["mde"].as_f64().unwrap() > 0.0);
+    // Whole-population impact for additive metrics: absolute per day = effect × triggered/day.
+    let impact = &c["population_impact"];
+    let rel = impact["relative"].as_f64().unwrap();
+    assert!(impact["ci_low"].as_f64().unwrap() <= rel && rel <= impact["ci_high"].as_f64().unwrap());
+    let units: f64 = cuped["arms"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|a| a["units"].as_f64().unwrap())
+        .sum();
+    let per_day = units / 21.0;
+    let want = c["difference"]["estimate"].as_f64().unwrap() * per_day;
+    assert!((impact["absolute_per_day"].as_f64().unwrap() - want).abs() < 1e-9 * want.abs());
+    let bought = cuped["results"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|r| r["metric"] == "bought")
+        .unwrap();
+    assert!(
+        bought["population_impact"].is_null(),
+        "0/1 metrics are not additive"
+    );
 
     let power = json(&[
         "power", "orders", "--mde", "5%", "--days", "14", "--format", "json",

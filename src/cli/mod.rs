@@ -468,7 +468,54 @@ fn analyze(
     let rows = rows.map_err(|e| usage(e.to_string()))?;
     let table = crate::execute::stats_table(&plan, &rows).map_err(|e| usage(e.to_string()))?;
     let spec = crate::readout_spec(&ws.catalog, id, &plan, options);
-    let readout = crate::stats::readout::build(&spec, &table);
+    let mut readout = crate::stats::readout::build(&spec, &table);
+    // Whole-population impact: daily totals of the experiment's (non-ratio) metrics over the
+    // whole population in the experiment's period, from the report query of the same metrics.
+    let exp = &ws.catalog.experiments[id];
+    let metric_ids: Vec<usize> = exp
+        .metrics
+        .iter()
+        .map(|(m, _)| *m)
+        // Only additive per-unit values (count, sum) have a meaningful population total.
+        .filter(|m| {
+            matches!(
+                ws.catalog.metrics[*m].kind,
+                crate::ir::MetricKind::Events {
+                    aggregation: crate::ir::Aggregation::Count | crate::ir::Aggregation::Sum,
+                    ..
+                }
+            )
+        })
+        .collect();
+    if !metric_ids.is_empty() {
+        let rplan = crate::plan::plan_report(
+            &ws.catalog,
+            &metric_ids,
+            crate::time::Grain::Day,
+            exp.start,
+            exp.end,
+            None,
+            None,
+        );
+        let days = (exp.end.0 - exp.start.0) as f64 / 86_400.0;
+        let rsql = crate::compile_report(&rplan, &dialect).map_err(|e| usage(e.to_string()))?;
+        let rows = Engine::open(ws.local_database.as_deref(), &ws.local_tables)
+            .and_then(|engine| engine.query(&rsql))
+            .and_then(|rows| crate::report::assemble(&rplan, &rows))
+            .map_err(|e| usage(e.to_string()))?;
+        let mut population = std::collections::BTreeMap::new();
+        for r in &rows {
+            *population.entry(r.metric.clone()).or_insert(0.0) += r.total.unwrap_or(0.0) / days;
+        }
+        let triggered = table
+            .rows
+            .iter()
+            .filter(|r| r.segment.is_none())
+            .map(|r| r.units)
+            .sum::<u64>() as f64
+            / days;
+        crate::stats::readout::add_population_impact(&mut readout, triggered, &population);
+    }
     let blocked = readout.void || !readout.guardrails_failed.is_empty();
     let text = match format {
         Format::Table => crate::output::readout_text(&readout),

@@ -187,6 +187,49 @@ pub struct ResultRow {
     pub family: &'static str,
     pub cuped: Option<CupedOut>,
     pub power: PowerOut,
+    /// The effect if the arm were shipped to every unit that would trigger it (overall rows of
+    /// non-ratio metrics, when population totals are known).
+    pub population_impact: Option<PopulationImpact>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct PopulationImpact {
+    /// Effect per unit × triggered units per day.
+    pub absolute_per_day: f64,
+    /// `absolute_per_day` relative to the metric's population total per day.
+    pub relative: f64,
+    /// Relative impact at the effect interval's bounds.
+    pub ci_low: f64,
+    pub ci_high: f64,
+}
+
+/// Adds whole-population impact to the overall rows: effect per unit × `triggered_per_day`,
+/// relative to `population_per_day[metric]` (the metric's total over all units per day, from
+/// the report query over the experiment's period). Assumes the triggered population stays as
+/// measured and the effect on units that would not trigger is zero.
+pub fn add_population_impact(
+    readout: &mut Readout,
+    triggered_per_day: f64,
+    population_per_day: &BTreeMap<String, f64>,
+) {
+    for r in readout.results.iter_mut().filter(|r| r.segment.is_none()) {
+        let (Some(d), Some(pop)) = (r.difference.as_ref(), population_per_day.get(&r.metric)) else {
+            continue;
+        };
+        if *pop == 0.0 || !pop.is_finite() {
+            continue;
+        }
+        let absolute = d.estimate * triggered_per_day;
+        r.population_impact = Some(PopulationImpact {
+            absolute_per_day: absolute,
+            relative: absolute / pop,
+            ci_low: d.ci_low * triggered_per_day / pop,
+            ci_high: d.ci_high * triggered_per_day / pop,
+        });
+    }
+    readout.assumptions.push(format!(
+        "Population impact: the effect per unit times the {triggered_per_day:.0} units per day that triggered the experiment (all arms), relative to the metric's daily total over the whole population in the same period. It assumes the triggered population stays as measured, the experiment saw every triggering unit, and the effect on units that would not trigger is zero."
+    ));
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -486,6 +529,7 @@ fn metric_rows(spec: &ReadoutSpec, rows: &[&ArmRow], segment: Option<SegmentRef>
                         theta,
                         variance_reduction,
                     }),
+                population_impact: None,
                 power: PowerOut {
                     mde,
                     mde_relative: mde.zip(control_value).map(|(m, c)| m / c),
