@@ -17,6 +17,7 @@ pub mod demo;
 pub mod diagnostics;
 pub mod execute;
 pub mod ir;
+pub mod lint;
 pub mod load;
 pub mod output;
 pub mod plan;

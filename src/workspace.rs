@@ -88,6 +88,43 @@ pub fn open(dir: &Path, sources: &mut SourceMap) -> Result<Opened, LoadError> {
         .map(|t| t.0.into_iter().map(|(n, p)| (n, raw_ws.root.join(p))).collect())
         .unwrap_or_default();
     let dialect = raw_ws.value.dialect.clone().unwrap_or_else(|| "duckdb".into());
+    let levels = raw_ws.value.lint.clone().map(|l| l.0).unwrap_or_default();
+    for (i, (key, level)) in levels.iter().enumerate() {
+        let known = crate::lint::RULES.iter().any(|r| r.code == key || r.name == key);
+        let span = raw_ws.value_span(&[Seg::Key("lint".into())]);
+        if !known {
+            diags.push(
+                Diagnostic::error("E003", format!("unknown lint rule `{key}`"))
+                    .at(span.clone())
+                    .hint(format!(
+                        "rules: {}",
+                        crate::lint::RULES
+                            .iter()
+                            .map(|r| format!("{} ({})", r.code, r.name))
+                            .collect::<Vec<_>>()
+                            .join(", ")
+                    )),
+            );
+        }
+        if !matches!(level.as_str(), "off" | "warning" | "error") {
+            diags.push(
+                Diagnostic::error(
+                    "E017",
+                    format!("lint level `{level}` for `{key}` (entry {})", i + 1),
+                )
+                .at(span)
+                .hint("use off, warning or error"),
+            );
+        }
+    }
+    if let Some(c) = &catalog
+        && !diags.iter().any(Diagnostic::is_error)
+    {
+        diags.extend(crate::lint::apply_levels(
+            crate::lint::lint(&raw_catalog, c),
+            &levels,
+        ));
+    }
     if diags.iter().any(Diagnostic::is_error) {
         return Ok(Opened::Invalid(diags));
     }

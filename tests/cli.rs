@@ -100,7 +100,7 @@ fn check_ok_prints_one_line_summary() {
     let ws = workspace(&[("ok.yaml", &body)]);
     let out = plumb(ws.path(), &["check"]);
     assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
-    insta::assert_snapshot!(text(&out.stdout), @"ok: 2 files, 2 units, 2 event tables, 1 exposure logs, 0 segments, 3 metrics, 1 experiments (dialect duckdb)\n");
+    insta::assert_snapshot!(text(&out.stdout), @"ok: 2 files, 2 units, 2 event tables, 1 exposure logs, 0 segments, 3 metrics, 1 experiments (dialect duckdb, 7 lint warnings)\n");
 }
 
 #[test]
@@ -177,4 +177,76 @@ fn user_dialect_folder_overrides_without_recompiling() {
     let sql = text(&out.stdout);
     assert!(sql.contains("AS FLOAT8)"), "{sql}");
     assert!(sql.contains("FILTER (WHERE"), "{sql}");
+}
+
+#[test]
+fn lint_warnings_are_reported_configurable_and_deniable() {
+    let body = std::fs::read_to_string(fixtures().join("ok_minimal.yaml")).unwrap();
+    let ws = workspace(&[("ok.yaml", &body)]);
+    let out = plumb(ws.path(), &["check"]);
+    assert_eq!(out.status.code(), Some(0));
+    let stderr = text(&out.stderr);
+    for code in ["L001", "L002", "L004"] {
+        assert!(
+            stderr.contains(&format!("warning[{code}]")),
+            "{code} missing:\n{stderr}"
+        );
+    }
+    assert!(
+        stderr.contains("no experiment uses metric `deliveries`"),
+        "{stderr}"
+    );
+    assert!(text(&out.stdout).contains("lint warnings"));
+    // --deny warnings fails the check for CI.
+    assert_eq!(
+        plumb(ws.path(), &["check", "--deny", "warnings"]).status.code(),
+        Some(1)
+    );
+    // Severities from plumb.yaml: switch rules off (by code or name) or make them errors.
+    std::fs::write(
+        ws.path().join("plumb.yaml"),
+        "catalog: metrics\nlint:\n  L001: off\n  metric-without-owner: off\n  unused-metric: off\n",
+    )
+    .unwrap();
+    let out = plumb(ws.path(), &["check", "--deny", "warnings"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    std::fs::write(
+        ws.path().join("plumb.yaml"),
+        "catalog: metrics\nlint:\n  L004: error\n",
+    )
+    .unwrap();
+    let out = plumb(ws.path(), &["check", "--format", "json"]);
+    assert_eq!(out.status.code(), Some(1));
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let errors: Vec<&serde_json::Value> = v["diagnostics"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|d| d["severity"] == "error")
+        .collect();
+    assert_eq!(errors.len(), 1);
+    assert_eq!(errors[0]["code"], "L004");
+    std::fs::write(
+        ws.path().join("plumb.yaml"),
+        "catalog: metrics\nlint:\n  L999: off\n",
+    )
+    .unwrap();
+    assert_eq!(
+        plumb(ws.path(), &["check"]).status.code(),
+        Some(1),
+        "unknown rules are errors"
+    );
+}
+
+#[test]
+fn the_demo_catalog_is_lint_clean() {
+    let dir = tempfile::tempdir().unwrap();
+    std::fs::create_dir_all(dir.path().join("metrics")).unwrap();
+    // The demo's own workspace file (its data files need not exist for `check`).
+    std::fs::write(dir.path().join("plumb.yaml"), plumb::demo::WORKSPACE_FILE).unwrap();
+    for (name, text) in plumb::demo::CATALOG {
+        std::fs::write(dir.path().join("metrics").join(name), text).unwrap();
+    }
+    let out = plumb(dir.path(), &["check", "--deny", "warnings"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
 }

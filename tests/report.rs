@@ -72,7 +72,9 @@ fn assert_equal(pairs: &[(f64, f64)]) {
 #[test]
 fn report_totals_equal_readout_totals_for_the_exposed_units() {
     let dir = demo(20_000);
-    let pairs = both_totals(dir.path(), &["orders", "revenue", "refunds", "page_views"]);
+    // `revenue` is winsorized in readouts (a cap from the experiment's units) and reports are
+    // never capped, so the comparison uses the uncapped metrics.
+    let pairs = both_totals(dir.path(), &["orders", "refunds", "page_views"]);
     assert!(pairs.iter().all(|(a, _)| *a > 0.0));
     assert_equal(&pairs);
 }
@@ -80,7 +82,7 @@ fn report_totals_equal_readout_totals_for_the_exposed_units() {
 #[test]
 fn a_definition_change_moves_both_numbers_identically() {
     let dir = demo(20_000);
-    let before = both_totals(dir.path(), &["orders", "revenue"]);
+    let before = both_totals(dir.path(), &["orders", "refunds"]);
     let catalog = dir.path().join("metrics/plant_shop.yaml");
     let text = std::fs::read_to_string(&catalog).unwrap();
     // Only orders above 30 euros count as paid orders from now on.
@@ -91,10 +93,10 @@ fn a_definition_change_moves_both_numbers_identically() {
     );
     assert_ne!(text, changed);
     std::fs::write(&catalog, changed).unwrap();
-    let after = both_totals(dir.path(), &["orders", "revenue"]);
+    let after = both_totals(dir.path(), &["orders", "refunds"]);
     assert_equal(&after);
     assert!(after[0].0 < before[0].0, "the new where removed orders");
-    assert_eq!(after[1], before[1], "revenue's definition did not change");
+    assert_eq!(after[1], before[1], "refunds' definition did not change");
 }
 
 #[test]

@@ -84,6 +84,9 @@ pub enum Command {
     Check {
         #[arg(long, value_enum, default_value = "table")]
         format: Format,
+        /// `--deny warnings`: lint warnings fail the check (exit code 1), for CI.
+        #[arg(long, value_parser = ["warnings"], value_name = "warnings")]
+        deny: Option<String>,
     },
     /// Print the readout SQL of an experiment (or, with --report, a report's SQL).
     Sql {
@@ -278,7 +281,7 @@ fn load_dialect(args: &Args, name: &str) -> Result<Dialect, Failure> {
 
 fn dispatch(args: &Args) -> Result<(), Failure> {
     match &args.command {
-        Command::Check { format } => check(args, *format),
+        Command::Check { format, deny } => check(args, *format, deny.is_some()),
         Command::Sql {
             experiment,
             report,
@@ -385,7 +388,7 @@ fn dispatch(args: &Args) -> Result<(), Failure> {
     }
 }
 
-fn check(args: &Args, format: Format) -> Result<(), Failure> {
+fn check(args: &Args, format: Format, deny_warnings: bool) -> Result<(), Failure> {
     let mut sources = SourceMap::new();
     let dir = workspace_dir(args);
     let result = workspace::open(&dir, &mut sources).map_err(|e| usage(e.to_string()))?;
@@ -400,8 +403,8 @@ fn check(args: &Args, format: Format) -> Result<(), Failure> {
         });
         emit(&(serde_json::to_string_pretty(&json).expect("json") + "\n"));
         return match ws {
-            Some(_) => Ok(()),
-            None => Err(Failure::Reported(EXIT_CATALOG)),
+            Some(_) if !deny_warnings || diags.is_empty() => Ok(()),
+            _ => Err(Failure::Reported(EXIT_CATALOG)),
         };
     }
     let Some(ws) = ws else {
@@ -412,9 +415,21 @@ fn check(args: &Args, format: Format) -> Result<(), Failure> {
     for id in 0..ws.catalog.experiments.len() {
         crate::compile_experiment(&ws.catalog, id, &[], &dialect).map_err(|e| usage(e.to_string()))?;
     }
+    if !diags.is_empty() {
+        eprint!("{}", diagnostics::render_plain(&sources, &diags));
+        if deny_warnings {
+            eprintln!("plumb: {} lint warnings (denied by --deny warnings)", diags.len());
+            return Err(Failure::Reported(EXIT_CATALOG));
+        }
+    }
     let c = &ws.catalog;
+    let warnings = match diags.len() {
+        0 => String::new(),
+        1 => ", 1 lint warning".into(),
+        n => format!(", {n} lint warnings"),
+    };
     emit(&format!(
-        "ok: {} files, {} units, {} event tables, {} exposure logs, {} segments, {} metrics, {} experiments (dialect {})\n",
+        "ok: {} files, {} units, {} event tables, {} exposure logs, {} segments, {} metrics, {} experiments (dialect {}{warnings})\n",
         ws.files,
         c.units.len(),
         c.event_tables.len(),

@@ -42,6 +42,10 @@ impl Engine {
             }
             None => Connection::open_in_memory().map_err(|e| err("starting DuckDB", e))?,
         };
+        // One thread: parallel aggregation adds floating-point numbers in a different order on
+        // every run, and the same inputs must give byte-identical results.
+        conn.execute_batch("SET threads = 1")
+            .map_err(|e| err("configuring DuckDB", e))?;
         let engine = Engine { conn };
         for (name, path) in tables {
             engine.register(name, path)?;

@@ -72,9 +72,11 @@ pub struct WorkspaceFile {
     pub catalog: Option<String>,
     pub dialect: Option<String>,
     pub local: Option<LocalData>,
+    /// Lint severities: rule code or name -> `off`, `warning` or `error`.
+    pub lint: Option<OrderedMap<String>>,
 }
 
-pub const WORKSPACE_KEYS: &[&str] = &["catalog", "dialect", "local"];
+pub const WORKSPACE_KEYS: &[&str] = &["catalog", "dialect", "local", "lint"];
 pub const LOCAL_KEYS: &[&str] = &["database", "tables"];
 
 /// `local:` in `plumb.yaml`: a DuckDB file and/or table name -> CSV/Parquet path.

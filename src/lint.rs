@@ -1,0 +1,199 @@
+//! Lint rules: a catalog that resolves can still be a catalog that misleads.
+//!
+//! Each rule has a stable code, a name and a one-line rationale (`plumb check` prints them as
+//! warnings with a span). Severity per rule is configurable in `plumb.yaml`
+//! (`lint: {L004: off, L005: error}`); `plumb check --deny warnings` turns every warning into
+//! a failure for CI. Rules read the resolved catalog and point at the YAML that triggered them.
+
+use crate::diagnostics::{Diagnostic, Severity};
+use crate::ir::{self, Aggregation, Catalog, MetricKind, Role};
+use crate::load::RawCatalog;
+
+/// A lint rule: stable code, name and why it matters.
+pub struct Rule {
+    pub code: &'static str,
+    pub name: &'static str,
+    pub rationale: &'static str,
+}
+
+pub const RULES: &[Rule] = &[
+    Rule {
+        code: "L001",
+        name: "metric-without-description",
+        rationale: "a metric nobody can explain gets misread; say what one unit's value means",
+    },
+    Rule {
+        code: "L002",
+        name: "metric-without-owner",
+        rationale: "someone must answer for a metric's definition when numbers look wrong",
+    },
+    Rule {
+        code: "L003",
+        name: "window-longer-than-experiment",
+        rationale: "units exposed late cannot complete the window, so the metric mixes complete and cut-off windows",
+    },
+    Rule {
+        code: "L004",
+        name: "unused-metric",
+        rationale: "a metric no experiment uses is untested by any readout; remove it or use it (reports may still use it)",
+    },
+    Rule {
+        code: "L005",
+        name: "guardrail-without-direction",
+        rationale: "a guardrail without `direction` can never fail the readout",
+    },
+    Rule {
+        code: "L006",
+        name: "experiment-without-primary",
+        rationale: "without primary metrics every result is secondary, and nothing decides the experiment",
+    },
+    Rule {
+        code: "L007",
+        name: "ratio-denominator-often-zero",
+        rationale: "a filtered or windowed denominator is zero for many units, so the ratio rests on few of them",
+    },
+    Rule {
+        code: "L008",
+        name: "sum-without-winsorize",
+        rationale: "sums of values (revenue, time) are usually heavy-tailed; a few extreme units can decide the result",
+    },
+];
+
+fn rule(code: &str) -> &'static Rule {
+    RULES.iter().find(|r| r.code == code).expect("a defined rule")
+}
+
+fn warn(code: &'static str, message: String) -> Diagnostic {
+    let r = rule(code);
+    Diagnostic {
+        severity: Severity::Warning,
+        code,
+        message: format!("{message} [{}]", r.name),
+        span: None,
+        labels: Vec::new(),
+        hints: vec![r.rationale.to_string()],
+    }
+}
+
+/// Runs every rule. Indexes of `raw` and `catalog` correspond (resolve keeps the order).
+pub fn lint(raw: &RawCatalog, catalog: &Catalog) -> Vec<Diagnostic> {
+    let mut out = Vec::new();
+    let mut used = vec![false; catalog.metrics.len()];
+    for e in &catalog.experiments {
+        for &(m, _) in &e.metrics {
+            used[m] = true;
+            if let MetricKind::Ratio {
+                numerator,
+                denominator,
+            } = catalog.metrics[m].kind
+            {
+                used[numerator] = true;
+                used[denominator] = true;
+            }
+        }
+    }
+    for (i, (item, m)) in raw.metrics.iter().zip(&catalog.metrics).enumerate() {
+        if m.description.is_none() {
+            out.push(warn("L001", format!("metric `{}` has no description", m.name)).at(Some(item.span())));
+        }
+        if m.owner.is_none() {
+            out.push(warn("L002", format!("metric `{}` has no owner", m.name)).at(Some(item.span())));
+        }
+        if !used[i] {
+            out.push(warn("L004", format!("no experiment uses metric `{}`", m.name)).at(Some(item.span())));
+        }
+        if let MetricKind::Events {
+            aggregation: Aggregation::Sum,
+            cap: None,
+            ..
+        } = m.kind
+            && used[i]
+        {
+            out.push(
+                warn("L008", format!("sum metric `{}` has no `winsorize`", m.name))
+                    .at(item.key_span("per_unit"))
+                    .hint("add e.g. `winsorize: 99.9%` after checking the tail of the per-unit values"),
+            );
+        }
+        if let MetricKind::Ratio { denominator, .. } = m.kind
+            && let MetricKind::Events { filter, window, .. } = &catalog.metrics[denominator].kind
+            && (filter.is_some() || window.end.is_some())
+        {
+            out.push(
+                warn(
+                    "L007",
+                    format!(
+                        "ratio `{}` divides by `{}`, which is filtered or windowed",
+                        m.name, catalog.metrics[denominator].name
+                    ),
+                )
+                .at(item.value_span("ratio")),
+            );
+        }
+    }
+    for (item, e) in raw.experiments.iter().zip(&catalog.experiments) {
+        let length = e.end.0 - e.start.0;
+        if !e.metrics.iter().any(|(_, r)| *r == Role::Primary) {
+            out.push(
+                warn("L006", format!("experiment `{}` has no primary metric", e.name)).at(Some(item.span())),
+            );
+        }
+        for &(m, role) in &e.metrics {
+            let metric: &ir::Metric = &catalog.metrics[m];
+            if role == Role::Guardrail && metric.direction.is_none() {
+                out.push(
+                    warn(
+                        "L005",
+                        format!("guardrail `{}` of `{}` has no direction", metric.name, e.name),
+                    )
+                    .at(Some(item.value_span("guardrails").unwrap_or_else(|| item.span())))
+                    .hint(format!(
+                        "add `direction: decrease` (or increase) to metric `{}`",
+                        metric.name
+                    )),
+                );
+            }
+            if let MetricKind::Events { window, .. } = &metric.kind
+                && window.end.is_some_and(|end| end > length)
+            {
+                out.push(
+                    warn(
+                        "L003",
+                        format!(
+                            "metric `{}` has a window of {}, longer than experiment `{}` ({})",
+                            metric.name,
+                            crate::time::format_duration(window.end.unwrap_or(0)),
+                            e.name,
+                            crate::time::format_duration(length)
+                        ),
+                    )
+                    .at(Some(item.span())),
+                );
+            }
+        }
+    }
+    out
+}
+
+/// Applies `lint:` settings from plumb.yaml: `off` drops a rule's diagnostics, `error` makes
+/// them errors, `warning` keeps them. Returns the kept diagnostics.
+pub fn apply_levels(diags: Vec<Diagnostic>, levels: &[(String, String)]) -> Vec<Diagnostic> {
+    diags
+        .into_iter()
+        .filter_map(|mut d| {
+            let name = rule(d.code).name;
+            match levels
+                .iter()
+                .find(|(k, _)| k == d.code || k == name)
+                .map(|(_, v)| v.as_str())
+            {
+                Some("off") => None,
+                Some("error") => {
+                    d.severity = Severity::Error;
+                    Some(d)
+                }
+                _ => Some(d),
+            }
+        })
+        .collect()
+}
