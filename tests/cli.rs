@@ -250,3 +250,41 @@ fn the_demo_catalog_is_lint_clean() {
     let out = plumb(dir.path(), &["check", "--deny", "warnings"]);
     assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
 }
+
+#[test]
+fn schema_lists_exactly_the_keys_the_loader_accepts() {
+    let empty = tempfile::tempdir().unwrap();
+    let out = Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .current_dir(empty.path())
+        .arg("schema")
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(0));
+    let schema: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let defs = &schema["$defs"];
+    let item_type = |kind: &str| -> String {
+        let items = &schema["properties"][kind]["items"];
+        let r = items
+            .get("$ref")
+            .or_else(|| items["anyOf"].get(0).and_then(|a| a.get("$ref")))
+            .unwrap_or_else(|| panic!("{kind}: {items}"));
+        r.as_str().unwrap().rsplit('/').next().unwrap().to_string()
+    };
+    for (kind, keys) in plumb::load::syntax::KINDS {
+        let def = &defs[item_type(kind)];
+        let mut props: Vec<&str> = def["properties"]
+            .as_object()
+            .unwrap()
+            .keys()
+            .map(String::as_str)
+            .collect();
+        let mut want: Vec<&str> = keys.to_vec();
+        props.sort();
+        want.sort();
+        assert_eq!(props, want, "schema of `{kind}` items");
+        assert_eq!(
+            def["additionalProperties"], false,
+            "{kind}: unknown keys are rejected"
+        );
+    }
+}

@@ -123,6 +123,8 @@ pub enum Command {
         #[arg(long)]
         sequential: bool,
     },
+    /// Print the JSON Schema of catalog files (for editors and YAML language servers).
+    Schema,
     /// A metric as a time series over the whole population of its unit.
     Report {
         #[arg(required = true)]
@@ -328,6 +330,11 @@ fn dispatch(args: &Args) -> Result<(), Failure> {
             if blocked {
                 return Err(Failure::Reported(EXIT_CHECKS));
             }
+            Ok(())
+        }
+        Command::Schema => {
+            let schema = crate::load::syntax::catalog_schema();
+            emit(&(serde_json::to_string_pretty(&schema).expect("json") + "\n"));
             Ok(())
         }
         Command::Report {

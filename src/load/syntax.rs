@@ -5,8 +5,10 @@
 //! optional here so that a missing key becomes a located "missing key" diagnostic in the
 //! resolver rather than a serde error that stops at the first problem.
 
+use schemars::{JsonSchema, Schema, SchemaGenerator, json_schema};
 use serde::de::{self, Deserializer, MapAccess, Visitor};
 use serde::{Deserialize, Serialize};
+use std::borrow::Cow;
 use std::fmt;
 
 /// A scalar written as a string, number or boolean, kept as its text (`14d`, `0`, `99.9%`).
@@ -42,6 +44,24 @@ impl<'de> Deserialize<'de> for Scalar {
     }
 }
 
+impl JsonSchema for Scalar {
+    fn schema_name() -> Cow<'static, str> {
+        "Scalar".into()
+    }
+    fn json_schema(_: &mut SchemaGenerator) -> Schema {
+        json_schema!({ "type": ["string", "number", "boolean"] })
+    }
+}
+
+impl<V: JsonSchema> JsonSchema for OrderedMap<V> {
+    fn schema_name() -> Cow<'static, str> {
+        format!("MapOf{}", V::schema_name()).into()
+    }
+    fn json_schema(generator: &mut SchemaGenerator) -> Schema {
+        json_schema!({ "type": "object", "additionalProperties": generator.subschema_for::<V>() })
+    }
+}
+
 /// A YAML mapping kept in source order (`split: {control: 50, treatment: 50}`).
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct OrderedMap<V>(pub Vec<(String, V)>);
@@ -67,7 +87,8 @@ impl<'de, V: Deserialize<'de>> Deserialize<'de> for OrderedMap<V> {
 }
 
 /// `plumb.yaml`.
-#[derive(Debug, Clone, Default, Deserialize, Serialize)]
+#[derive(Debug, Clone, Default, Deserialize, Serialize, JsonSchema)]
+#[schemars(deny_unknown_fields)]
 pub struct WorkspaceFile {
     pub catalog: Option<String>,
     pub dialect: Option<String>,
@@ -80,13 +101,15 @@ pub const WORKSPACE_KEYS: &[&str] = &["catalog", "dialect", "local", "lint"];
 pub const LOCAL_KEYS: &[&str] = &["database", "tables"];
 
 /// `local:` in `plumb.yaml`: a DuckDB file and/or table name -> CSV/Parquet path.
-#[derive(Debug, Clone, Default, Deserialize, Serialize)]
+#[derive(Debug, Clone, Default, Deserialize, Serialize, JsonSchema)]
+#[schemars(deny_unknown_fields)]
 pub struct LocalData {
     pub database: Option<String>,
     pub tables: Option<OrderedMap<String>>,
 }
 
-#[derive(Debug, Clone, Deserialize, Serialize)]
+#[derive(Debug, Clone, Deserialize, Serialize, JsonSchema)]
+#[schemars(deny_unknown_fields)]
 pub struct Unit {
     pub name: Option<String>,
     pub description: Option<String>,
@@ -94,12 +117,14 @@ pub struct Unit {
     pub active: Option<Active>,
 }
 
-#[derive(Debug, Clone, Deserialize, Serialize)]
+#[derive(Debug, Clone, Deserialize, Serialize, JsonSchema)]
+#[schemars(deny_unknown_fields)]
 pub struct Active {
     pub events: Option<String>,
 }
 
-#[derive(Debug, Clone, Deserialize, Serialize)]
+#[derive(Debug, Clone, Deserialize, Serialize, JsonSchema)]
+#[schemars(deny_unknown_fields)]
 pub struct EventTable {
     pub name: Option<String>,
     pub description: Option<String>,
@@ -114,7 +139,8 @@ pub struct EventTable {
     pub columns: Option<Vec<String>>,
 }
 
-#[derive(Debug, Clone, Deserialize, Serialize)]
+#[derive(Debug, Clone, Deserialize, Serialize, JsonSchema)]
+#[schemars(deny_unknown_fields)]
 pub struct ExposureLog {
     pub name: Option<String>,
     pub description: Option<String>,
@@ -127,7 +153,8 @@ pub struct ExposureLog {
     pub arm: Option<String>,
 }
 
-#[derive(Debug, Clone, Deserialize, Serialize)]
+#[derive(Debug, Clone, Deserialize, Serialize, JsonSchema)]
+#[schemars(deny_unknown_fields)]
 pub struct Segment {
     pub name: Option<String>,
     pub description: Option<String>,
@@ -139,7 +166,8 @@ pub struct Segment {
     pub from_exposure: Option<String>,
 }
 
-#[derive(Debug, Clone, Deserialize, Serialize)]
+#[derive(Debug, Clone, Deserialize, Serialize, JsonSchema)]
+#[schemars(deny_unknown_fields)]
 pub struct Metric {
     pub name: Option<String>,
     pub description: Option<String>,
@@ -159,7 +187,8 @@ pub struct Metric {
     pub mde: Option<Scalar>,
 }
 
-#[derive(Debug, Clone, Deserialize, Serialize)]
+#[derive(Debug, Clone, Deserialize, Serialize, JsonSchema)]
+#[schemars(deny_unknown_fields)]
 pub struct Experiment {
     pub name: Option<String>,
     pub description: Option<String>,
@@ -259,3 +288,25 @@ pub const KINDS: &[(&str, &[&str])] = &[
         ],
     ),
 ];
+
+/// A catalog file: any of the top-level lists, each optional. The JSON Schema `plumb schema`
+/// prints is generated from this type and the item types above, the same ones the loader uses.
+#[derive(Debug, Clone, Default, Deserialize, Serialize, JsonSchema)]
+#[schemars(deny_unknown_fields)]
+pub struct CatalogFile {
+    pub units: Option<Vec<Unit>>,
+    pub event_tables: Option<Vec<EventTable>>,
+    pub exposure_logs: Option<Vec<ExposureLog>>,
+    pub segments: Option<Vec<Segment>>,
+    pub metrics: Option<Vec<Metric>>,
+    pub experiments: Option<Vec<Experiment>>,
+}
+
+/// The JSON Schema of catalog files, for editors and YAML language servers.
+pub fn catalog_schema() -> serde_json::Value {
+    let mut schema = schemars::schema_for!(CatalogFile).to_value();
+    if let Some(o) = schema.as_object_mut() {
+        o.insert("title".into(), "plumb catalog file".into());
+    }
+    schema
+}
