@@ -15,6 +15,7 @@
 pub mod cli;
 pub mod demo;
 pub mod diagnostics;
+pub mod diff;
 pub mod execute;
 pub mod ir;
 pub mod lint;

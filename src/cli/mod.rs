@@ -10,6 +10,7 @@ use crate::render::Dialect;
 use crate::source::SourceMap;
 use crate::workspace::{self, Opened, Workspace};
 use clap::{Parser, Subcommand, ValueEnum};
+use std::collections::BTreeMap;
 use std::io::Write;
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
@@ -18,6 +19,10 @@ use std::process::ExitCode;
 pub const EXIT_CATALOG: u8 = 1;
 /// Exit code: the readout is void (sample-ratio mismatch) or a guardrail failed.
 pub const EXIT_CHECKS: u8 = 3;
+/// Exit code (`plumb diff`): definitions changed.
+pub const EXIT_DEFINITIONS_CHANGED: u8 = 4;
+/// Exit code (`plumb diff --fail-on-verdict-change`): a readout verdict changed.
+pub const EXIT_VERDICT_CHANGED: u8 = 5;
 /// Exit code: usage errors (bad flags, unknown experiment, missing workspace) and internal errors.
 pub const EXIT_USAGE: u8 = 2;
 
@@ -41,6 +46,13 @@ pub struct Args {
 #[derive(Debug, Clone, Copy, ValueEnum, PartialEq, Eq)]
 pub enum Format {
     Table,
+    Json,
+}
+
+#[derive(Debug, Clone, Copy, ValueEnum, PartialEq, Eq)]
+pub enum DiffFormat {
+    Table,
+    Markdown,
     Json,
 }
 
@@ -122,6 +134,26 @@ pub enum Command {
         /// Always-valid p-values and intervals (mixture SPRT), for looking every day.
         #[arg(long)]
         sequential: bool,
+    },
+    /// What a catalog change does: definitions, affected experiments and reports, SQL and numbers.
+    Diff {
+        /// Base revision (default: the merge base with the default branch, else HEAD).
+        #[arg(long)]
+        base: Option<String>,
+        /// Head revision (default: the working tree).
+        #[arg(long)]
+        head: Option<String>,
+        /// Dialect of the SQL diff (default: the workspace's).
+        #[arg(long)]
+        dialect: Option<String>,
+        /// Also run both versions on the local data and compare the numbers.
+        #[arg(long)]
+        data: bool,
+        #[arg(long, value_enum, default_value = "table")]
+        format: DiffFormat,
+        /// Exit with 5 when any readout verdict changes (needs --data).
+        #[arg(long)]
+        fail_on_verdict_change: bool,
     },
     /// Print the JSON Schema of catalog files (for editors and YAML language servers).
     Schema,
@@ -332,6 +364,7 @@ fn dispatch(args: &Args) -> Result<(), Failure> {
             }
             Ok(())
         }
+        Command::Diff { .. } => diff(args),
         Command::Schema => {
             let schema = crate::load::syntax::catalog_schema();
             emit(&(serde_json::to_string_pretty(&schema).expect("json") + "\n"));
@@ -544,6 +577,225 @@ fn analyze(
         Format::Json => crate::output::readout_json(&readout),
     };
     Ok((text, blocked))
+}
+
+/// Runs git in `dir`; its failure is a usage error.
+fn git(dir: &Path, args: &[&str]) -> Result<String, Failure> {
+    let out = std::process::Command::new("git")
+        .arg("-C")
+        .arg(dir)
+        .args(args)
+        .output()
+        .map_err(|e| usage(format!("cannot run git: {e}")))?;
+    if !out.status.success() {
+        return Err(usage(format!(
+            "git {} failed: {}",
+            args.join(" "),
+            String::from_utf8_lossy(&out.stderr).trim()
+        )));
+    }
+    Ok(String::from_utf8_lossy(&out.stdout).into_owned())
+}
+
+/// The merge base of HEAD with the default branch (origin's HEAD, main or master), else HEAD.
+fn default_base(top: &Path) -> String {
+    let candidates = ["refs/remotes/origin/HEAD", "refs/heads/main", "refs/heads/master"];
+    for c in candidates {
+        if git(top, &["rev-parse", "--verify", "--quiet", c]).is_ok()
+            && let Ok(mb) = git(top, &["merge-base", "HEAD", c])
+        {
+            let mb = mb.trim().to_string();
+            if !mb.is_empty() {
+                return mb;
+            }
+        }
+    }
+    "HEAD".into()
+}
+
+/// The catalog files at a git revision, read from git objects (the working tree is untouched).
+fn catalog_at(top: &Path, rev: &str, catalog_rel: &str) -> Result<Vec<(String, String)>, Failure> {
+    let list = git(top, &["ls-tree", "-r", "--name-only", rev, "--", catalog_rel])?;
+    let mut files = Vec::new();
+    for path in list
+        .lines()
+        .filter(|p| p.ends_with(".yaml") || p.ends_with(".yml"))
+    {
+        let text = git(top, &["show", &format!("{rev}:{path}")])?;
+        files.push((format!("{rev}:{path}"), text));
+    }
+    files.sort();
+    Ok(files)
+}
+
+/// Loads and resolves catalog files; diagnostics become a catalog failure.
+fn resolve_files(
+    files: &[(String, String)],
+) -> Result<(crate::load::RawCatalog, crate::ir::Catalog), Failure> {
+    let mut sources = SourceMap::new();
+    let refs: Vec<(&str, &str)> = files.iter().map(|(p, t)| (p.as_str(), t.as_str())).collect();
+    let (raw, mut diags) = crate::load::load_catalog_texts(&refs, &mut sources);
+    match crate::resolve::resolve(&sources, &raw) {
+        Ok(c) if !diags.iter().any(Diagnostic::is_error) => Ok((raw, c)),
+        Ok(_) => Err(Failure::Catalog(sources, diags)),
+        Err(more) => {
+            diags.extend(more);
+            Err(Failure::Catalog(sources, diags))
+        }
+    }
+}
+
+fn diff(args: &Args) -> Result<(), Failure> {
+    let Command::Diff {
+        base,
+        head,
+        dialect,
+        data,
+        format,
+        fail_on_verdict_change,
+    } = &args.command
+    else {
+        unreachable!("dispatched on Command::Diff");
+    };
+    let dir = workspace_dir(args);
+    let mut sources = SourceMap::new();
+    let (raw_ws, head_raw, diags) =
+        crate::load::load_workspace(&dir, &mut sources).map_err(|e| usage(e.to_string()))?;
+    if diags.iter().any(Diagnostic::is_error) {
+        return Err(Failure::Catalog(sources, diags));
+    }
+    let top = PathBuf::from(git(&dir, &["rev-parse", "--show-toplevel"])?.trim());
+    let prefix = git(&dir, &["rev-parse", "--show-prefix"])?.trim().to_string();
+    let catalog_rel = format!("{prefix}{}", raw_ws.value.catalog.as_deref().unwrap_or("metrics"));
+    let base_rev = base.clone().unwrap_or_else(|| default_base(&top));
+    let (base_raw, base_ir) = resolve_files(&catalog_at(&top, &base_rev, &catalog_rel)?)?;
+    let (head_raw, head_ir, head_name) = match head {
+        Some(rev) => {
+            let (r, c) = resolve_files(&catalog_at(&top, rev, &catalog_rel)?)?;
+            (r, c, rev.clone())
+        }
+        None => match crate::resolve::resolve(&sources, &head_raw) {
+            Ok(c) => (head_raw, c, "working tree".to_string()),
+            Err(d) => return Err(Failure::Catalog(sources, d)),
+        },
+    };
+    let changes = crate::diff::changes(&base_raw, &head_raw);
+    let dialect_name = dialect
+        .clone()
+        .or(raw_ws.value.dialect.clone())
+        .unwrap_or_else(|| "duckdb".into());
+    let dialect = load_dialect(args, &dialect_name)?;
+    let mut affected = Vec::new();
+    for (name, reasons) in crate::diff::affected_experiments(&base_ir, &head_ir, &changes) {
+        let sql = |c: &crate::ir::Catalog| -> Result<String, Failure> {
+            match c.experiment(&name) {
+                Some(id) => crate::compile_experiment(c, id, &[], &dialect)
+                    .map(|(_, s)| s)
+                    .map_err(|e| usage(e.to_string())),
+                None => Ok(String::new()),
+            }
+        };
+        let sql_diff = crate::diff::text_diff(&sql(&base_ir)?, &sql(&head_ir)?, &base_rev, &head_name);
+        let numbers = if *data {
+            diff_numbers(&dir, &name, &base_ir, &head_ir)?
+        } else {
+            Vec::new()
+        };
+        affected.push(crate::diff::Affected {
+            experiment: name,
+            reasons,
+            sql_diff,
+            numbers,
+        });
+    }
+    let d = crate::diff::Diff {
+        base: base_rev,
+        head: head_name,
+        affected_reports: crate::diff::affected_reports(&base_ir, &head_ir, &changes),
+        changes,
+        affected_experiments: affected,
+    };
+    use std::io::IsTerminal;
+    emit(&match format {
+        DiffFormat::Table => crate::diff::text_output(&d, std::io::stdout().is_terminal()),
+        DiffFormat::Markdown => crate::diff::markdown_output(&d),
+        DiffFormat::Json => serde_json::to_string_pretty(&d).expect("json") + "\n",
+    });
+    if *fail_on_verdict_change && d.verdict_flips() > 0 {
+        return Err(Failure::Reported(EXIT_VERDICT_CHANGED));
+    }
+    if !d.changes.is_empty() {
+        return Err(Failure::Reported(EXIT_DEFINITIONS_CHANGED));
+    }
+    Ok(())
+}
+
+#[cfg(not(feature = "engine"))]
+fn diff_numbers(
+    _: &Path,
+    _: &str,
+    _: &crate::ir::Catalog,
+    _: &crate::ir::Catalog,
+) -> Result<Vec<crate::diff::NumberChange>, Failure> {
+    Err(usage("--data needs the `engine` feature"))
+}
+
+/// Readout rows of one experiment before and after, on the working tree's local data.
+#[cfg(feature = "engine")]
+fn diff_numbers(
+    dir: &Path,
+    experiment: &str,
+    base: &crate::ir::Catalog,
+    head: &crate::ir::Catalog,
+) -> Result<Vec<crate::diff::NumberChange>, Failure> {
+    use crate::diff::{NumberChange, RowNumbers};
+    let mut sources = SourceMap::new();
+    let (ws, _) = open(dir, &mut sources)?;
+    let engine = crate::execute::duckdb::Engine::open(ws.local_database.as_deref(), &ws.local_tables)
+        .map_err(|e| usage(e.to_string()))?;
+    let dialect = crate::render::Dialect::load("duckdb", None).map_err(|e| usage(e.to_string()))?;
+    let rows = |c: &crate::ir::Catalog| -> Result<BTreeMap<(String, String), RowNumbers>, Failure> {
+        let mut out = BTreeMap::new();
+        let Some(id) = c.experiment(experiment) else {
+            return Ok(out);
+        };
+        let (plan, sql) =
+            crate::compile_experiment(c, id, &[], &dialect).map_err(|e| usage(e.to_string()))?;
+        let result = engine.query(&sql).map_err(|e| usage(e.to_string()))?;
+        let table = crate::execute::stats_table(&plan, &result).map_err(|e| usage(e.to_string()))?;
+        let spec = crate::readout_spec(c, id, &plan, crate::ReadoutOptions::default());
+        let readout = crate::stats::readout::build(&spec, &table);
+        for r in readout.results.iter().filter(|r| r.segment.is_none()) {
+            out.insert(
+                (r.metric.clone(), r.arm.clone()),
+                RowNumbers {
+                    control_mean: r.control.mean,
+                    treatment_mean: r.treatment.mean,
+                    difference: r.difference.as_ref().map(|d| d.estimate),
+                    ci_low: r.difference.as_ref().map(|d| d.ci_low),
+                    ci_high: r.difference.as_ref().map(|d| d.ci_high),
+                    verdict: r.verdict.to_string(),
+                },
+            );
+        }
+        Ok(out)
+    };
+    let (before, after) = (rows(base)?, rows(head)?);
+    let keys: std::collections::BTreeSet<&(String, String)> = before.keys().chain(after.keys()).collect();
+    Ok(keys
+        .into_iter()
+        .filter(|k| before.get(*k) != after.get(*k))
+        .map(|k| {
+            let (b, a) = (before.get(k).cloned(), after.get(k).cloned());
+            NumberChange {
+                metric: k.0.clone(),
+                arm: k.1.clone(),
+                verdict_changed: b.as_ref().map(|x| &x.verdict) != a.as_ref().map(|x| &x.verdict),
+                before: b,
+                after: a,
+            }
+        })
+        .collect())
 }
 
 /// Resolves report arguments into a report plan.
