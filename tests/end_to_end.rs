@@ -303,3 +303,126 @@ fn cuped_sequential_and_power_on_the_demo() {
     let want = plumb::stats::power::total_units(0.05 * mean, sd, 0.05, 0.8, 0.5);
     assert!((power["total_units"].as_f64().unwrap() - want).abs() < 1e-6 * want);
 }
+
+fn csv_of(rows: &[plumb::execute::NamedRow]) -> String {
+    let cols: Vec<String> = rows[0].keys().cloned().collect();
+    let mut out = cols.join(",") + "\n";
+    for r in rows {
+        let cells: Vec<String> = cols
+            .iter()
+            .map(|c| match &r[c] {
+                plumb::execute::Cell::Null => String::new(),
+                plumb::execute::Cell::Number(x) => format!("{x:?}"),
+                plumb::execute::Cell::Text(t) => format!("\"{}\"", t.replace('"', "\"\"")),
+            })
+            .collect();
+        out += &(cells.join(",") + "\n");
+    }
+    out
+}
+
+/// The warehouse hand-off: run `plumb sql` elsewhere, export the statistics table, and
+/// `plumb analyze --stats FILE` gives the same readout; a file from another catalog version or
+/// experiment is rejected. The postgres and generic dialects' SQL also runs on DuckDB and gives
+/// the same statistics as the duckdb dialect.
+#[test]
+fn statistics_table_hand_off_gives_the_same_readout() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .args(["demo", "--no-readout", "--shoppers", "5000"])
+        .arg(dir.path())
+        .output()
+        .unwrap();
+    assert!(out.status.success());
+    let mut sources = SourceMap::new();
+    let ws = match plumb::workspace::open(dir.path(), &mut sources).unwrap() {
+        plumb::workspace::Opened::Ok(ws, _) => ws,
+        plumb::workspace::Opened::Invalid(_) => panic!("demo catalog invalid"),
+    };
+    let engine = Engine::open(None, &ws.local_tables).unwrap();
+    let id = ws.catalog.experiment("one_page_checkout").unwrap();
+    let mut tables = Vec::new();
+    for dialect in ["duckdb", "postgres", "generic"] {
+        let d = plumb::render::Dialect::load(dialect, None).unwrap();
+        let (plan, sql) = plumb::compile_experiment(&ws.catalog, id, &[], &d).unwrap();
+        let rows = engine.query(&sql).unwrap();
+        if dialect == "duckdb" {
+            std::fs::write(dir.path().join("stats.csv"), csv_of(&rows)).unwrap();
+        }
+        tables.push(plumb::execute::stats_table(&plan, &rows).unwrap());
+    }
+    for t in &tables[1..] {
+        assert_eq!(t.rows.len(), tables[0].rows.len());
+        for (a, b) in t.rows.iter().zip(&tables[0].rows) {
+            assert_eq!(
+                (a.arm.clone(), a.segment.clone(), a.units),
+                (b.arm.clone(), b.segment.clone(), b.units)
+            );
+            for (k, m) in &a.columns {
+                let n = b.columns[k];
+                assert_eq!(m.n, n.n, "{k}");
+                assert!((m.mean - n.mean).abs() <= 1e-9 * n.mean.abs().max(1.0), "{k}");
+                assert!(
+                    (m.var - n.var).abs() <= 1e-9 * n.var.abs().max(1.0)
+                        || (m.var.is_nan() && n.var.is_nan()),
+                    "{k}"
+                );
+            }
+        }
+    }
+    let local = plumb_in(dir.path(), &["analyze", "one_page_checkout", "--format", "json"]);
+    let handed = plumb_in(
+        dir.path(),
+        &[
+            "analyze",
+            "one_page_checkout",
+            "--format",
+            "json",
+            "--stats",
+            dir.path().join("stats.csv").to_str().unwrap(),
+        ],
+    );
+    assert!(
+        handed.status.success(),
+        "{}",
+        String::from_utf8_lossy(&handed.stderr)
+    );
+    let (mut a, mut b): (serde_json::Value, serde_json::Value) = (
+        serde_json::from_slice(&local.stdout).unwrap(),
+        serde_json::from_slice(&handed.stdout).unwrap(),
+    );
+    // Population impact needs the local event tables; everything else must be identical.
+    for doc in [&mut a, &mut b] {
+        for r in doc["results"].as_array_mut().unwrap() {
+            r.as_object_mut().unwrap().remove("population_impact");
+        }
+        doc.as_object_mut().unwrap().remove("assumptions");
+    }
+    assert_eq!(a, b);
+    // Another experiment's query, or a changed catalog, is rejected with a clear error.
+    let other = plumb_in(
+        dir.path(),
+        &[
+            "analyze",
+            "care_guide_banner",
+            "--stats",
+            dir.path().join("stats.csv").to_str().unwrap(),
+        ],
+    );
+    assert_eq!(other.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&other.stderr).contains("another query"));
+    let catalog = dir.path().join("metrics/plant_shop.yaml");
+    let text = std::fs::read_to_string(&catalog).unwrap();
+    std::fs::write(&catalog, text.replace("window: [0d, 7d]", "window: [0d, 6d]")).unwrap();
+    let changed = plumb_in(
+        dir.path(),
+        &[
+            "analyze",
+            "one_page_checkout",
+            "--stats",
+            dir.path().join("stats.csv").to_str().unwrap(),
+        ],
+    );
+    assert_eq!(changed.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&changed.stderr).contains("fingerprint"));
+}

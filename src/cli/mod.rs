@@ -10,7 +10,6 @@ use crate::render::Dialect;
 use crate::source::SourceMap;
 use crate::workspace::{self, Opened, Workspace};
 use clap::{Parser, Subcommand, ValueEnum};
-use std::collections::BTreeMap;
 use std::io::Write;
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
@@ -134,6 +133,10 @@ pub enum Command {
         /// Always-valid p-values and intervals (mixture SPRT), for looking every day.
         #[arg(long)]
         sequential: bool,
+        /// Read the statistics table from FILE (CSV or JSON exported from a warehouse run of
+        /// `plumb sql EXPERIMENT --dialect D`) instead of running SQL locally.
+        #[arg(long, value_name = "FILE", conflicts_with = "by")]
+        stats: Option<PathBuf>,
     },
     /// What a catalog change does: definitions, affected experiments and reports, SQL and numbers.
     Diff {
@@ -348,6 +351,7 @@ fn dispatch(args: &Args) -> Result<(), Failure> {
             by,
             no_cuped,
             sequential,
+            stats,
         } => {
             if !(*alpha > 0.0 && *alpha < 1.0) {
                 return Err(usage(format!("--alpha must be between 0 and 1, got {alpha}")));
@@ -357,7 +361,10 @@ fn dispatch(args: &Args) -> Result<(), Failure> {
                 cuped: !no_cuped,
                 sequential: *sequential,
             };
-            let (text, blocked) = analyze(args, &workspace_dir(args), experiment, by, options, *format)?;
+            let (text, blocked) = match stats {
+                Some(file) => analyze_stats(args, experiment, file, options, *format)?,
+                None => analyze(args, &workspace_dir(args), experiment, by, options, *format)?,
+            };
             emit(&text);
             if blocked {
                 return Err(Failure::Reported(EXIT_CHECKS));
@@ -480,6 +487,31 @@ fn check(args: &Args, format: Format, deny_warnings: bool) -> Result<(), Failure
         ws.dialect
     ));
     Ok(())
+}
+
+/// The readout from a statistics table exported from a warehouse (`analyze --stats FILE`).
+fn analyze_stats(
+    args: &Args,
+    experiment: &str,
+    file: &Path,
+    options: crate::ReadoutOptions,
+    format: Format,
+) -> Result<(String, bool), Failure> {
+    let mut sources = SourceMap::new();
+    let (ws, _) = open(&workspace_dir(args), &mut sources)?;
+    let id = find_experiment(&ws, experiment)?;
+    let plan = crate::plan::plan_experiment(&ws.catalog, id, &[]);
+    let rows = crate::execute::read_stats_file(file).map_err(|e| usage(e.to_string()))?;
+    crate::execute::check_fingerprint(&plan, &rows).map_err(|e| usage(e.to_string()))?;
+    let table = crate::execute::stats_table(&plan, &rows).map_err(|e| usage(e.to_string()))?;
+    let spec = crate::readout_spec(&ws.catalog, id, &plan, options);
+    let readout = crate::stats::readout::build(&spec, &table);
+    let blocked = readout.void || !readout.guardrails_failed.is_empty();
+    let text = match format {
+        Format::Table => crate::output::readout_text(&readout),
+        Format::Json => crate::output::readout_json(&readout),
+    };
+    Ok((text, blocked))
 }
 
 #[cfg(not(feature = "engine"))]
@@ -754,8 +786,8 @@ fn diff_numbers(
     let engine = crate::execute::duckdb::Engine::open(ws.local_database.as_deref(), &ws.local_tables)
         .map_err(|e| usage(e.to_string()))?;
     let dialect = crate::render::Dialect::load("duckdb", None).map_err(|e| usage(e.to_string()))?;
-    let rows = |c: &crate::ir::Catalog| -> Result<BTreeMap<(String, String), RowNumbers>, Failure> {
-        let mut out = BTreeMap::new();
+    let rows = |c: &crate::ir::Catalog| -> Result<std::collections::BTreeMap<(String, String), RowNumbers>, Failure> {
+        let mut out = std::collections::BTreeMap::new();
         let Some(id) = c.experiment(experiment) else {
             return Ok(out);
         };

@@ -107,3 +107,187 @@ pub fn stats_table(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<StatsTabl
     }
     Ok(table)
 }
+
+/// Reads a statistics table exported from a warehouse: CSV with a header row, or JSON (an array
+/// of objects, or one object per line). Parquet is not read by this build: export CSV or JSON.
+pub fn read_stats_file(path: &std::path::Path) -> Result<Vec<NamedRow>, ExecuteError> {
+    let ext = path
+        .extension()
+        .and_then(|e| e.to_str())
+        .unwrap_or("")
+        .to_ascii_lowercase();
+    let text = std::fs::read_to_string(path)
+        .map_err(|e| ExecuteError(format!("cannot read {}: {e}", path.display())))?;
+    match ext.as_str() {
+        "csv" => parse_csv(&text).map_err(|e| ExecuteError(format!("{}: {e}", path.display()))),
+        "json" | "jsonl" | "ndjson" => {
+            parse_json(&text).map_err(|e| ExecuteError(format!("{}: {e}", path.display())))
+        }
+        "parquet" => Err(ExecuteError(format!(
+            "{}: Parquet statistics files are not supported by this build; export the result as CSV or JSON",
+            path.display()
+        ))),
+        _ => Err(ExecuteError(format!(
+            "{}: unknown file type; export the statistics table as .csv or .json",
+            path.display()
+        ))),
+    }
+}
+
+fn cell_from_text(t: &str) -> Cell {
+    let t = t.trim();
+    if t.is_empty() || t.eq_ignore_ascii_case("null") || t == "\\N" {
+        Cell::Null
+    } else if let Ok(x) = t.parse::<f64>() {
+        Cell::Number(x)
+    } else if t.eq_ignore_ascii_case("nan") {
+        Cell::Number(f64::NAN)
+    } else {
+        Cell::Text(t.to_string())
+    }
+}
+
+/// RFC 4180 CSV: quoted fields may hold commas, quotes (doubled) and newlines.
+fn parse_csv(text: &str) -> Result<Vec<NamedRow>, String> {
+    let mut records: Vec<Vec<(String, bool)>> = Vec::new();
+    let mut field = String::new();
+    let mut record = Vec::new();
+    let (mut quoted, mut in_quotes, mut chars) = (false, false, text.chars().peekable());
+    while let Some(c) = chars.next() {
+        match c {
+            '"' if in_quotes && chars.peek() == Some(&'"') => {
+                field.push('"');
+                chars.next();
+            }
+            '"' if in_quotes => in_quotes = false,
+            '"' if field.is_empty() => {
+                in_quotes = true;
+                quoted = true;
+            }
+            ',' if !in_quotes => {
+                record.push((std::mem::take(&mut field), quoted));
+                quoted = false;
+            }
+            '\n' if !in_quotes => {
+                record.push((
+                    std::mem::take(&mut field).trim_end_matches('\r').to_string(),
+                    quoted,
+                ));
+                quoted = false;
+                records.push(std::mem::take(&mut record));
+            }
+            c => field.push(c),
+        }
+    }
+    if in_quotes {
+        return Err("a quoted field is not closed".into());
+    }
+    if !field.is_empty() || !record.is_empty() {
+        record.push((field, quoted));
+        records.push(record);
+    }
+    let mut records = records
+        .into_iter()
+        .filter(|r| !(r.len() == 1 && r[0].0.is_empty()));
+    let header: Vec<String> = records
+        .next()
+        .ok_or("the file is empty")?
+        .into_iter()
+        .map(|(h, _)| h.trim().to_ascii_lowercase())
+        .collect();
+    records
+        .enumerate()
+        .map(|(i, r)| {
+            if r.len() != header.len() {
+                return Err(format!(
+                    "row {} has {} fields, the header {}",
+                    i + 2,
+                    r.len(),
+                    header.len()
+                ));
+            }
+            Ok(header
+                .iter()
+                .cloned()
+                .zip(
+                    r.into_iter()
+                        .map(|(v, q)| if q { Cell::Text(v) } else { cell_from_text(&v) }),
+                )
+                .collect())
+        })
+        .collect()
+}
+
+fn parse_json(text: &str) -> Result<Vec<NamedRow>, String> {
+    let values: Vec<serde_json::Value> = match serde_json::from_str::<serde_json::Value>(text) {
+        Ok(serde_json::Value::Array(a)) => a,
+        Ok(v @ serde_json::Value::Object(_)) => vec![v],
+        _ => text
+            .lines()
+            .filter(|l| !l.trim().is_empty())
+            .map(|l| serde_json::from_str(l).map_err(|e| e.to_string()))
+            .collect::<Result<_, _>>()?,
+    };
+    values
+        .into_iter()
+        .map(|v| {
+            let serde_json::Value::Object(o) = v else {
+                return Err("each row must be a JSON object".to_string());
+            };
+            Ok(o.into_iter()
+                .map(|(k, v)| {
+                    let cell = match v {
+                        serde_json::Value::Null => Cell::Null,
+                        serde_json::Value::Number(n) => Cell::Number(n.as_f64().unwrap_or(f64::NAN)),
+                        serde_json::Value::String(s) => cell_from_text(&s),
+                        serde_json::Value::Bool(b) => Cell::Number(f64::from(u8::from(b))),
+                        other => Cell::Text(other.to_string()),
+                    };
+                    (k.to_ascii_lowercase(), cell)
+                })
+                .collect())
+        })
+        .collect()
+}
+
+/// Checks that a statistics table comes from this plan: same fingerprint, same layout.
+pub fn check_fingerprint(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<(), ExecuteError> {
+    let want = crate::plan::fingerprint(plan);
+    if rows.is_empty() {
+        return Err(ExecuteError("the statistics table has no rows".into()));
+    }
+    for row in rows {
+        let row: NamedRow = row
+            .iter()
+            .map(|(k, v)| (k.to_ascii_lowercase(), v.clone()))
+            .collect();
+        match row.get("plumb_layout") {
+            Some(Cell::Number(x)) if *x == f64::from(crate::plan::STATS_LAYOUT) => {}
+            Some(Cell::Text(t)) if t.trim() == crate::plan::STATS_LAYOUT.to_string() => {}
+            None => {
+                return Err(ExecuteError(
+                    "the statistics table has no plumb_layout column: it was not produced by `plumb sql`"
+                        .into(),
+                ));
+            }
+            Some(other) => {
+                return Err(ExecuteError(format!(
+                    "the statistics table has layout {other:?}, this plumb reads layout {}; re-run the query from `plumb sql`",
+                    crate::plan::STATS_LAYOUT
+                )));
+            }
+        }
+        let got = match row.get("plumb_fingerprint") {
+            Some(Cell::Text(t)) => t.clone(),
+            Some(Cell::Number(x)) => x.to_string(),
+            _ => String::new(),
+        };
+        if got != want {
+            return Err(ExecuteError(format!(
+                "the statistics table comes from another query (fingerprint `{got}`, expected `{want}`): another experiment or another version of the catalog. Re-run the SQL that `plumb sql {}` prints now",
+                plan.experiment
+            )));
+        }
+    }
+    Ok(())
+}

@@ -352,6 +352,81 @@ fn push_aggregate(
     });
 }
 
+/// Version of the statistics table's column layout (see README, "Statistics table").
+pub const STATS_LAYOUT: u32 = 1;
+
+fn source_text(source: &Source) -> String {
+    match source {
+        Source::Table(parts) => parts.join("."),
+        Source::Query(q) => q.to_string(),
+    }
+}
+
+/// A fingerprint of the compiled query, independent of the dialect: `fp` and 16 hex digits of FNV-1a
+/// (64 bit) over a canonical text of the plan. Another experiment, another catalog version or
+/// another plumb layout gives another fingerprint, so a statistics table exported from a
+/// warehouse can be matched to the query that produced it.
+pub fn fingerprint(plan: &ExperimentPlan) -> String {
+    let mut text = format!(
+        "layout {STATS_LAYOUT}\nexperiment {}\nexposures {} {} {} {} {} {}\nperiod {} {} {}\n",
+        plan.experiment,
+        source_text(&plan.exposures.source),
+        plan.exposures.id,
+        plan.exposures.time,
+        plan.exposures.experiment_column,
+        plan.exposures.arm_column,
+        plan.exposures.key,
+        plan.start.0,
+        plan.end.0,
+        plan.covariate_window
+    );
+    let expr = |e: &Option<Expr>| e.as_ref().map(|e| e.to_string()).unwrap_or_default();
+    for s in &plan.scans {
+        text += &format!(
+            "scan {} {} {} {} {} {}\n",
+            s.name,
+            source_text(&s.source),
+            s.id,
+            s.time,
+            expr(&s.filter),
+            s.earliest_offset
+        );
+        for a in &s.aggregates {
+            text += &format!(
+                "  {} {:?} {} {} {:?}\n",
+                a.column,
+                a.aggregation,
+                expr(&a.value),
+                expr(&a.filter),
+                a.window
+            );
+        }
+    }
+    text += &format!("{:?}\n{:?}\n{:?}\n", plan.columns, plan.covariances, plan.metrics);
+    for seg in &plan.segments {
+        text += &match &seg.kind {
+            PlannedSegmentKind::Exposure { column } => format!("segment {} exposure {column}\n", seg.name),
+            PlannedSegmentKind::Attribute {
+                source,
+                id,
+                value,
+                time,
+            } => format!(
+                "segment {} attribute {} {id} {value} {:?}\n",
+                seg.name,
+                source_text(source),
+                time
+            ),
+        };
+    }
+    let mut hash: u64 = 0xcbf2_9ce4_8422_2325;
+    for b in text.bytes() {
+        hash ^= u64::from(b);
+        hash = hash.wrapping_mul(0x0000_0100_0000_01b3);
+    }
+    format!("fp{hash:016x}")
+}
+
 /// The experiment whose exposed units a report is restricted to (`--exposed-in`).
 #[derive(Debug, Clone)]
 pub struct ExposedIn {

@@ -529,6 +529,8 @@ impl Dialect {
             segments => segments,
             exposure_segments => exposure_segments,
             attribute_segments => attribute_segments,
+            fingerprint => self.literal(&crate::plan::fingerprint(plan)),
+            layout => crate::plan::STATS_LAYOUT,
         };
         self.render_template("experiment.sql.j2", ctx)
     }
