@@ -144,7 +144,7 @@ fn report_command_fills_gaps_and_writes_json_and_csv() {
         "2026-03-08",
         "--format",
         "csv",
-        "--by-segment",
+        "--by",
         "region",
     ]);
     let mut lines = csv.lines();

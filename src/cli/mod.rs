@@ -81,9 +81,6 @@ pub struct ReportWindow {
     /// End of the report (excluded), UTC.
     #[arg(long)]
     pub to: Option<String>,
-    /// Slice by this segment (`plumb report` only; `plumb sql` takes --by for experiments).
-    #[arg(long = "by-segment", value_name = "SEGMENT")]
-    pub segment: Option<String>,
     /// Only the units exposed in this experiment, with metric windows from first exposure.
     #[arg(long, value_name = "EXPERIMENT")]
     pub exposed_in: Option<String>,
@@ -164,6 +161,9 @@ pub enum Command {
     Report {
         #[arg(required = true)]
         metrics: Vec<String>,
+        /// Slice by this segment (an exposure-row segment needs --exposed-in).
+        #[arg(long, value_name = "SEGMENT")]
+        by: Option<String>,
         #[command(flatten)]
         window: ReportWindow,
         #[arg(long, value_enum, default_value = "table")]
@@ -379,10 +379,12 @@ fn dispatch(args: &Args) -> Result<(), Failure> {
         }
         Command::Report {
             metrics,
+            by,
             window,
             format,
         } => {
-            let text = report(args, metrics, window, *format)?;
+            let by: Vec<String> = by.iter().cloned().collect();
+            let text = report(args, metrics, &by, window, *format)?;
             emit(&text);
             Ok(())
         }
@@ -879,10 +881,7 @@ fn report_plan(
             "{periods} periods is too many; use a coarser --grain"
         )));
     }
-    let mut segments = find_segments(ws, by)?;
-    if let Some(s) = &window.segment {
-        segments.extend(find_segments(ws, std::slice::from_ref(s))?);
-    }
+    let segments = find_segments(ws, by)?;
     if segments.len() > 1 {
         return Err(usage("a report slices by one segment at a time"));
     }
@@ -911,7 +910,13 @@ fn report_plan(
 }
 
 #[cfg(not(feature = "engine"))]
-fn report(_: &Args, _: &[String], _: &ReportWindow, _: ReportFormat) -> Result<String, Failure> {
+fn report(
+    _: &Args,
+    _: &[String],
+    _: &[String],
+    _: &ReportWindow,
+    _: ReportFormat,
+) -> Result<String, Failure> {
     Err(usage(
         "this plumb was built without the `engine` feature, so it cannot run SQL locally",
     ))
@@ -921,13 +926,14 @@ fn report(_: &Args, _: &[String], _: &ReportWindow, _: ReportFormat) -> Result<S
 fn report(
     args: &Args,
     metrics: &[String],
+    by: &[String],
     window: &ReportWindow,
     format: ReportFormat,
 ) -> Result<String, Failure> {
     use crate::execute::duckdb::Engine;
     let mut sources = SourceMap::new();
     let (ws, _) = open(&workspace_dir(args), &mut sources)?;
-    let plan = report_plan(&ws, metrics, window, &[])?;
+    let plan = report_plan(&ws, metrics, window, by)?;
     let dialect = load_dialect(args, "duckdb")?;
     let sql = crate::compile_report(&plan, &dialect).map_err(|e| usage(e.to_string()))?;
     let spinner = progress("running the report on local DuckDB");

@@ -148,7 +148,7 @@ pub fn readout_text(r: &Readout) -> String {
     }
     out.push_str(&table.to_string());
     out.push_str(
-        "\np: raw (adjusted within the row's family when different); CUPED: variance removed by the covariate.\n",
+        "\np: raw (adjusted within the row's family when different). Families: primary metrics (Holm), secondary\nmetrics and segment rows (Benjamini-Hochberg), guardrails (unadjusted). CUPED: variance removed by the covariate.\n",
     );
     let segment_rows: Vec<&ResultRow> = r
         .results
