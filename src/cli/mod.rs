@@ -548,13 +548,7 @@ fn analyze(
     let dialect = load_dialect(args, "duckdb")?;
     let (plan, sql) =
         crate::compile_experiment(&ws.catalog, id, &by, &dialect).map_err(|e| usage(e.to_string()))?;
-    let spinner = progress(&format!("running {experiment} on local DuckDB"));
-    let rows =
-        Engine::open(ws.local_database.as_deref(), &ws.local_tables).and_then(|engine| engine.query(&sql));
-    if let Some(s) = spinner {
-        s.finish_and_clear();
-    }
-    let rows = rows.map_err(|e| usage(e.to_string()))?;
+    let rows = run_local(&ws, &sql, &format!("running {experiment} on local DuckDB"))?;
     let table = crate::execute::stats_table(&plan, &rows).map_err(|e| usage(e.to_string()))?;
     let spec = crate::readout_spec(&ws.catalog, id, &plan, options);
     let mut readout = crate::stats::readout::build(&spec, &table);
@@ -930,19 +924,12 @@ fn report(
     window: &ReportWindow,
     format: ReportFormat,
 ) -> Result<String, Failure> {
-    use crate::execute::duckdb::Engine;
     let mut sources = SourceMap::new();
     let (ws, _) = open(&workspace_dir(args), &mut sources)?;
     let plan = report_plan(&ws, metrics, window, by)?;
     let dialect = load_dialect(args, "duckdb")?;
     let sql = crate::compile_report(&plan, &dialect).map_err(|e| usage(e.to_string()))?;
-    let spinner = progress("running the report on local DuckDB");
-    let rows =
-        Engine::open(ws.local_database.as_deref(), &ws.local_tables).and_then(|engine| engine.query(&sql));
-    if let Some(s) = spinner {
-        s.finish_and_clear();
-    }
-    let rows = rows.map_err(|e| usage(e.to_string()))?;
+    let rows = run_local(&ws, &sql, "running the report on local DuckDB")?;
     let rows = crate::report::assemble(&plan, &rows).map_err(|e| usage(e.to_string()))?;
     Ok(match format {
         ReportFormat::Table => crate::report::text_output(&rows),
@@ -963,7 +950,6 @@ fn power(_: &Args) -> Result<String, Failure> {
 /// the units and days needed for the MDE under the planned split, and under other splits.
 #[cfg(feature = "engine")]
 fn power(args: &Args) -> Result<String, Failure> {
-    use crate::execute::duckdb::Engine;
     use crate::ir::{self, Role, Source};
     use crate::stats::power as pw;
     use crate::time::Timestamp;
@@ -1089,13 +1075,11 @@ fn power(args: &Args) -> Result<String, Failure> {
     let exp_id = catalog.experiments.len() - 1;
     let (plan, sql) =
         crate::compile_experiment(&catalog, exp_id, &[], &dialect).map_err(|e| usage(e.to_string()))?;
-    let spinner = progress(&format!("reading {history_days} days of history for {metric}"));
-    let rows =
-        Engine::open(ws.local_database.as_deref(), &ws.local_tables).and_then(|engine| engine.query(&sql));
-    if let Some(s) = spinner {
-        s.finish_and_clear();
-    }
-    let rows = rows.map_err(|e| usage(e.to_string()))?;
+    let rows = run_local(
+        &ws,
+        &sql,
+        &format!("reading {history_days} days of history for {metric}"),
+    )?;
     let table = crate::execute::stats_table(&plan, &rows).map_err(|e| usage(e.to_string()))?;
     let row = table.rows.iter().find(|r| r.arm == "all").ok_or_else(|| {
         usage(format!(
@@ -1208,6 +1192,19 @@ fn power(args: &Args) -> Result<String, Failure> {
     }
     out += "Assumes the history window is typical of the experiment period, units independent, and a normal approximation for the difference (enough units per arm). Uneven splits need more units in all because the smaller arm dominates the variance.\n";
     Ok(out)
+}
+
+/// Runs `sql` on the workspace's local data with a spinner on a terminal.
+#[cfg(feature = "engine")]
+fn run_local(ws: &Workspace, sql: &str, message: &str) -> Result<Vec<crate::execute::NamedRow>, Failure> {
+    use crate::execute::duckdb::Engine;
+    let spinner = progress(message);
+    let rows =
+        Engine::open(ws.local_database.as_deref(), &ws.local_tables).and_then(|engine| engine.query(sql));
+    if let Some(s) = spinner {
+        s.finish_and_clear();
+    }
+    rows.map_err(|e| usage(e.to_string()))
 }
 
 /// A spinner on stderr while a query runs, only when stderr is a terminal.

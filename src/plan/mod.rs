@@ -236,31 +236,36 @@ pub fn plan_experiment(
         }
     }
     for id in segment_ids {
-        let s = &catalog.segments[id];
-        let kind = match &s.kind {
-            SegmentKind::FromExposure(column) => PlannedSegmentKind::Exposure {
-                column: column.clone(),
-            },
-            SegmentKind::Attribute {
-                source,
-                id,
-                value,
-                time,
-                ..
-            } => PlannedSegmentKind::Attribute {
-                source: source.clone(),
-                id: id.clone(),
-                value: Box::new(qualify(value, SEGMENT_ALIAS)),
-                time: time.clone(),
-            },
-        };
-        plan.segments.push(PlannedSegment {
-            name: s.name.clone(),
-            column: format!("segment__{}", s.name),
-            kind,
-        });
+        plan.segments.push(planned_segment(catalog, id));
     }
     plan
+}
+
+/// A segment as the plan needs it: its per-unit column and where its value comes from.
+fn planned_segment(catalog: &Catalog, id: ir::SegmentId) -> PlannedSegment {
+    let s = &catalog.segments[id];
+    let kind = match &s.kind {
+        SegmentKind::FromExposure(column) => PlannedSegmentKind::Exposure {
+            column: column.clone(),
+        },
+        SegmentKind::Attribute {
+            source,
+            id,
+            value,
+            time,
+            ..
+        } => PlannedSegmentKind::Attribute {
+            source: source.clone(),
+            id: id.clone(),
+            value: Box::new(qualify(value, SEGMENT_ALIAS)),
+            time: time.clone(),
+        },
+    };
+    PlannedSegment {
+        name: s.name.clone(),
+        column: format!("segment__{}", s.name),
+        kind,
+    }
 }
 
 fn add_covariance(plan: &mut ExperimentPlan, a: &str, b: &str) {
@@ -551,29 +556,7 @@ pub fn plan_report(
         });
     }
     if let Some(id) = segment {
-        let s = &catalog.segments[id];
-        let kind = match &s.kind {
-            SegmentKind::FromExposure(column) => PlannedSegmentKind::Exposure {
-                column: column.clone(),
-            },
-            SegmentKind::Attribute {
-                source,
-                id,
-                value,
-                time,
-                ..
-            } => PlannedSegmentKind::Attribute {
-                source: source.clone(),
-                id: id.clone(),
-                value: Box::new(qualify(value, SEGMENT_ALIAS)),
-                time: time.clone(),
-            },
-        };
-        plan.segment = Some(PlannedSegment {
-            name: s.name.clone(),
-            column: format!("segment__{}", s.name),
-            kind,
-        });
+        plan.segment = Some(planned_segment(catalog, id));
     }
     plan
 }

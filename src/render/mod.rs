@@ -490,13 +490,7 @@ impl Dialect {
                     time,
                 } => {
                     let cte = format!("segment_{}", seg.name);
-                    attribute_segments.push(context! {
-                        cte => cte,
-                        source => self.source(source),
-                        id => self.ident(id),
-                        value => self.fragment(value),
-                        time => time.as_ref().map(|t| self.ident(t)),
-                    });
+                    attribute_segments.push(self.segment_context(&cte, source, id, value, time.as_ref()));
                     format!("{cte}.segment_value")
                 }
             };
@@ -514,14 +508,7 @@ impl Dialect {
             string_type => self.caps.string_type,
             start => self.timestamp(plan.start)?,
             end => end,
-            exposures => context! {
-                source => self.source(&x.source),
-                id => self.ident(&x.id),
-                time => self.ident(&x.time),
-                arm => self.ident(&x.arm_column),
-                experiment => self.ident(&x.experiment_column),
-                key => self.literal(&x.key),
-            },
+            exposures => self.exposures_context(x),
             scans => scans,
             columns => columns,
             caps => caps,
@@ -594,26 +581,16 @@ impl Dialect {
                 }
                 PlannedSegmentKind::Attribute { source, id, value, time } => {
                     let cte = format!("segment_{}", seg.name);
-                    attribute_segments.push(context! {
-                        cte => cte,
-                        source => self.source(source),
-                        id => self.ident(id),
-                        value => self.fragment(value),
-                        time => if windowed { time.as_ref().map(|t| self.ident(t)) } else { None },
-                    });
+                    // Without exposures there is no "as of exposure": the smallest value is used.
+                    let time = if windowed { time.as_ref() } else { None };
+                    attribute_segments.push(self.segment_context(&cte, source, id, value, time));
                     format!("{cte}.segment_value")
                 }
             }});
-        let exposures = plan.exposed.as_ref().map(|x| {
-            context! {
-                source => self.source(&x.exposures.source),
-                id => self.ident(&x.exposures.id),
-                time => self.ident(&x.exposures.time),
-                arm => self.ident(&x.exposures.arm_column),
-                experiment => self.ident(&x.exposures.experiment_column),
-                key => self.literal(&x.exposures.key),
-            }
-        });
+        let exposures = plan
+            .exposed
+            .as_ref()
+            .map(|x| self.exposures_context(&x.exposures));
         let (start, end) = match &plan.exposed {
             Some(x) => (Some(self.timestamp(x.start)?), Some(self.timestamp(x.end)?)),
             None => (None, None),
@@ -636,6 +613,36 @@ impl Dialect {
             rows => rows,
         };
         self.render_template("report.sql.j2", ctx)
+    }
+
+    /// Template context of the exposure log part shared by readout and report queries.
+    fn exposures_context(&self, x: &crate::plan::ExposureScan) -> minijinja::Value {
+        context! {
+            source => self.source(&x.source),
+            id => self.ident(&x.id),
+            time => self.ident(&x.time),
+            arm => self.ident(&x.arm_column),
+            experiment => self.ident(&x.experiment_column),
+            key => self.literal(&x.key),
+        }
+    }
+
+    /// Template context of a unit-attribute segment's CTE.
+    fn segment_context(
+        &self,
+        cte: &str,
+        source: &Source,
+        id: &str,
+        value: &Expr,
+        time: Option<&String>,
+    ) -> minijinja::Value {
+        context! {
+            cte => cte,
+            source => self.source(source),
+            id => self.ident(id),
+            value => self.fragment(value),
+            time => time.map(|t| self.ident(t)),
+        }
     }
 
     fn render_template(&self, name: &str, ctx: minijinja::Value) -> Result<String, DialectError> {
