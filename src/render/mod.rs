@@ -268,15 +268,16 @@ impl Dialect {
         format!("{q}{}{q}", name.replace(q.as_str(), &format!("{q}{q}")))
     }
 
-    /// A string literal, with single quotes doubled (and backslashes doubled for engines that
-    /// read them as escapes inside literals).
+    /// A string literal: single quotes doubled, or — for engines that read backslash escapes
+    /// inside literals — backslashes and quotes escaped with a backslash.
     pub fn literal(&self, value: &str) -> String {
-        let v = if self.caps.backslash_escapes {
-            value.replace('\\', "\\\\")
+        if self.caps.backslash_escapes {
+            // Engines that read backslash escapes also read two adjacent quotes as two string
+            // literals (concatenated), so a quote is escaped with a backslash there.
+            format!("'{}'", value.replace('\\', "\\\\").replace('\'', "\\'"))
         } else {
-            value.to_string()
-        };
-        format!("'{}'", v.replace('\'', "''"))
+            format!("'{}'", value.replace('\'', "''"))
+        }
     }
 
     /// Re-emits a user fragment for this dialect: identifiers the user quoted get this
@@ -675,6 +676,14 @@ mod tests {
         let d = Dialect::load("duckdb", None).unwrap();
         assert_eq!(d.ident(r#"a"; drop table x; --"#), r#""a""; drop table x; --""#);
         assert_eq!(d.literal("it's"), "'it''s'");
+    }
+
+    #[test]
+    fn literals_escape_quotes_the_way_each_engine_reads_them() {
+        let duck = Dialect::load("duckdb", None).unwrap();
+        assert_eq!(duck.literal(r"it's \n"), r"'it''s \n'");
+        let spark = Dialect::load("spark", None).unwrap();
+        assert_eq!(spark.literal(r"it's \n"), r"'it\'s \\n'");
     }
 
     #[test]
