@@ -1,0 +1,298 @@
+//! The same numbers on real engines besides DuckDB. A PostgreSQL server and Spark SQL (local
+//! mode, from the PyPI package) run the postgres- and spark-dialect SQL over the demo data, for
+//! the demo experiments and one that uses every metric kind, windows, a ratio and segments;
+//! their statistics tables must equal DuckDB's (counts exactly, moments to 1e-9 relative) and
+//! `plumb analyze --stats` on them must give the same readouts as the local DuckDB run.
+//!
+//! Each engine runs when its variable is set (`.ci/run` sets both): `PLUMB_PG_URL` (a
+//! PostgreSQL connection URL for `psql`) and `PLUMB_SPARK_PYTHON` (a Python with `pyspark`).
+//! Otherwise the test says loudly that it was skipped.
+#![cfg(feature = "engine")]
+
+use std::path::Path;
+use std::process::Command;
+
+fn plumb(ws: &Path, args: &[&str]) -> serde_json::Value {
+    let out = Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .arg("--workspace")
+        .arg(ws)
+        .args(args)
+        .output()
+        .unwrap();
+    assert!(
+        out.status.code() == Some(0) || out.status.code() == Some(3),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    serde_json::from_slice(&out.stdout).unwrap()
+}
+
+/// Equal up to 1e-9 relative for numbers; identical otherwise.
+fn same(a: &serde_json::Value, b: &serde_json::Value, path: &str) {
+    use serde_json::Value::*;
+    match (a, b) {
+        (Number(x), Number(y)) => {
+            let (x, y) = (x.as_f64().unwrap(), y.as_f64().unwrap());
+            assert!(
+                (x - y).abs() <= 1e-9 * x.abs().max(y.abs()).max(1e-12),
+                "{path}: {x} vs {y}"
+            );
+        }
+        (Object(x), Object(y)) => {
+            assert_eq!(
+                x.keys().collect::<Vec<_>>(),
+                y.keys().collect::<Vec<_>>(),
+                "{path}"
+            );
+            for (k, v) in x {
+                same(v, &y[k], &format!("{path}.{k}"));
+            }
+        }
+        (Array(x), Array(y)) => {
+            assert_eq!(x.len(), y.len(), "{path}");
+            for (i, (v, w)) in x.iter().zip(y).enumerate() {
+                same(v, w, &format!("{path}[{i}]"));
+            }
+        }
+        _ => assert_eq!(a, b, "{path}"),
+    }
+}
+
+fn strip(mut v: serde_json::Value) -> serde_json::Value {
+    for r in v["results"].as_array_mut().unwrap() {
+        r.as_object_mut().unwrap().remove("population_impact");
+    }
+    v.as_object_mut().unwrap().remove("assumptions");
+    v
+}
+
+const EXPERIMENTS: [&str; 3] = ["one_page_checkout", "care_guide_banner", "engine_check"];
+
+/// Metrics the demo lacks (distinct, min, max) and an experiment using every kind, windows, a
+/// ratio across two event tables, covariates and both kinds of segment.
+const EXTRA: &str = r#"
+metrics:
+  - name: pages_seen
+    description: Distinct pages viewed.
+    owner: web-analytics
+    events: visits
+    per_unit: distinct
+    of: page
+    window: [0h, 72h]
+  - name: smallest_order
+    description: Smallest paid order, in cents.
+    owner: checkout-analytics
+    events: orders
+    per_unit: min
+    of: amount_cents
+    where: "status = 'paid'"
+  - name: largest_order
+    description: Largest paid order, in cents.
+    owner: checkout-analytics
+    events: orders
+    per_unit: max
+    of: amount_cents
+    where: "status = 'paid'"
+  - name: orders_per_view
+    description: Paid orders per page view.
+    owner: checkout-analytics
+    ratio: [orders, page_views]
+experiments:
+  - name: engine_check
+    exposures: assignments
+    key: one-page-checkout
+    control: control
+    split: {control: 50, treatment: 50}
+    start: 2026-03-02T00:00:00Z
+    end: 2026-03-23T00:00:00Z
+    primary: [orders, bought, engaged]
+    secondary: [revenue, avg_basket, pages_seen, smallest_order, largest_order, orders_per_view, page_views]
+    guardrails: [refunds]
+    covariate_window: 7d
+    segments: [region, device]
+"#;
+
+fn workspace() -> tempfile::TempDir {
+    let dir = tempfile::tempdir().unwrap();
+    plumb::demo::write_demo(
+        dir.path(),
+        &plumb::demo::DemoConfig {
+            seed: 9,
+            shoppers: 3_000,
+        },
+    )
+    .unwrap();
+    std::fs::write(dir.path().join("metrics/extra.yaml"), EXTRA).unwrap();
+    dir
+}
+
+fn sql(ws: &Path, exp: &str, dialect: &str) -> std::path::PathBuf {
+    let out = Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .arg("--workspace")
+        .arg(ws)
+        .args(["sql", exp, "--dialect", dialect])
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let path = ws.join(format!("{exp}.{dialect}.sql"));
+    std::fs::write(&path, &out.stdout).unwrap();
+    path
+}
+
+/// The engine's statistics table equals DuckDB's, and its readout equals the local one.
+fn compare_with_duckdb(ws: &Path, exp: &str, stats: &Path) {
+    let mut sources = plumb::source::SourceMap::new();
+    let Ok(plumb::workspace::Opened::Ok(w, _)) = plumb::workspace::open(ws, &mut sources) else {
+        panic!("workspace");
+    };
+    let id = w.catalog.experiment(exp).unwrap();
+    let dialect = plumb::render::Dialect::load("duckdb", None).unwrap();
+    let (plan, duck_sql) = plumb::compile_experiment(&w.catalog, id, &[], &dialect).unwrap();
+    let engine = plumb::execute::duckdb::Engine::open(None, &w.local_tables).unwrap();
+    let duck = plumb::execute::stats_table(&plan, &engine.query(&duck_sql).unwrap()).unwrap();
+    let other = plumb::execute::stats_table(&plan, &plumb::execute::read_stats_file(stats).unwrap()).unwrap();
+    assert_eq!(duck.excluded_multiple_arms, other.excluded_multiple_arms);
+    assert_eq!(duck.rows.len(), other.rows.len(), "{exp}: rows");
+    for (a, b) in duck.rows.iter().zip(&other.rows) {
+        assert_eq!(
+            (&a.arm, &a.segment, a.units),
+            (&b.arm, &b.segment, b.units),
+            "{exp}"
+        );
+        for (k, m) in &a.columns {
+            let o = b.columns[k];
+            assert_eq!(m.n, o.n, "{exp} {k} n");
+            for (x, y, what) in [(m.mean, o.mean, "mean"), (m.var, o.var, "var")] {
+                assert!(
+                    (x.is_nan() && y.is_nan()) || (x - y).abs() <= 1e-9 * x.abs().max(y.abs()).max(1e-12),
+                    "{exp} {k} {what}: duckdb {x} vs engine {y}"
+                );
+            }
+        }
+        for (k, x) in &a.covariances {
+            let y = b.covariances[k];
+            assert!(
+                (x.is_nan() && y.is_nan()) || (x - y).abs() <= 1e-9 * x.abs().max(y.abs()).max(1e-9),
+                "{exp} {k}: duckdb {x} vs engine {y}"
+            );
+        }
+    }
+    let local = strip(plumb(ws, &["analyze", exp, "--format", "json"]));
+    let handed = strip(plumb(
+        ws,
+        &[
+            "analyze",
+            exp,
+            "--format",
+            "json",
+            "--stats",
+            stats.to_str().unwrap(),
+        ],
+    ));
+    same(&local, &handed, exp);
+}
+
+#[test]
+fn postgresql_gives_the_same_statistics_and_readouts_as_duckdb() {
+    let Ok(url) = std::env::var("PLUMB_PG_URL") else {
+        eprintln!("SKIPPED: PostgreSQL engine test (set PLUMB_PG_URL; .ci/run starts a server and does)");
+        return;
+    };
+    let dir = workspace();
+    let ws = dir.path();
+    let schema = format!("plumb_test_{}", std::process::id());
+    let psql = |args: &[&str], schema_path: bool| -> String {
+        let mut cmd = Command::new("psql");
+        cmd.arg(&url)
+            .args(["-X", "-q", "-v", "ON_ERROR_STOP=1"])
+            .args(args);
+        if schema_path {
+            cmd.env("PGOPTIONS", format!("-c search_path={schema}"));
+        }
+        let out = cmd.output().expect("psql");
+        assert!(
+            out.status.success(),
+            "psql {args:?}: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        String::from_utf8(out.stdout).unwrap()
+    };
+    let started = std::time::Instant::now();
+    let data = |t: &str| ws.join(format!("data/{t}.csv")).display().to_string();
+    let mut load = vec![
+        format!("CREATE SCHEMA {schema};"),
+        format!("SET search_path = {schema};"),
+        "CREATE TABLE shoppers (shopper_id text, region text, signed_up_at timestamp);".to_string(),
+        "CREATE TABLE visits (shopper_id text, visited_at timestamp, page text);".to_string(),
+        "CREATE TABLE orders (order_id text, shopper_id text, ordered_at timestamp, status text, amount_cents bigint, is_test boolean);".to_string(),
+        "CREATE TABLE assignments (shopper_id text, experiment text, arm text, exposed_at timestamp, device text);".to_string(),
+    ];
+    for t in ["shoppers", "visits", "orders", "assignments"] {
+        load.push(format!(
+            "\\copy {t} FROM '{}' WITH (FORMAT csv, HEADER true)",
+            data(t)
+        ));
+    }
+    load.push("ANALYZE;".into());
+    std::fs::write(ws.join("load.psql"), load.join("\n") + "\n").unwrap();
+    psql(&["-f", ws.join("load.psql").to_str().unwrap()], false);
+    for exp in EXPERIMENTS {
+        let q = sql(ws, exp, "postgres");
+        let csv = psql(&["--csv", "-f", q.to_str().unwrap()], true);
+        let stats = ws.join(format!("{exp}.postgres.csv"));
+        std::fs::write(&stats, csv).unwrap();
+        compare_with_duckdb(ws, exp, &stats);
+    }
+    psql(&["-c", &format!("DROP SCHEMA {schema} CASCADE")], false);
+    eprintln!("postgres engine test: {:.1}s", started.elapsed().as_secs_f64());
+}
+
+#[test]
+fn spark_sql_gives_the_same_statistics_and_readouts_as_duckdb() {
+    let Ok(python) = std::env::var("PLUMB_SPARK_PYTHON") else {
+        eprintln!(
+            "SKIPPED: Spark engine test (set PLUMB_SPARK_PYTHON to a Python with pyspark; .ci/run does)"
+        );
+        return;
+    };
+    let dir = workspace();
+    let ws = dir.path();
+    let mut jobs = Vec::new();
+    for exp in EXPERIMENTS {
+        let sql = sql(ws, exp, "spark");
+        let tables: serde_json::Map<String, serde_json::Value> =
+            ["orders", "visits", "assignments", "shoppers"]
+                .iter()
+                .map(|t| {
+                    (
+                        t.to_string(),
+                        ws.join(format!("data/{t}.csv")).to_str().unwrap().into(),
+                    )
+                })
+                .collect();
+        jobs.push(
+            serde_json::json!({"sql": sql, "tables": tables, "out": ws.join(format!("{exp}.stats.csv"))}),
+        );
+    }
+    std::fs::write(ws.join("jobs.json"), serde_json::to_string(&jobs).unwrap()).unwrap();
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/engines/spark_stats.py");
+    let started = std::time::Instant::now();
+    let out = Command::new(python)
+        .arg(script)
+        .arg(ws.join("jobs.json"))
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "spark failed:\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    eprintln!(
+        "{}spark total {:.1}s",
+        String::from_utf8_lossy(&out.stderr),
+        started.elapsed().as_secs_f64()
+    );
+    for exp in EXPERIMENTS {
+        compare_with_duckdb(ws, exp, &ws.join(format!("{exp}.stats.csv")));
+    }
+}
