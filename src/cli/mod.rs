@@ -134,6 +134,11 @@ pub enum Command {
         /// `plumb sql EXPERIMENT --dialect D`) instead of running SQL locally.
         #[arg(long, value_name = "FILE", conflicts_with = "by")]
         stats: Option<PathBuf>,
+        /// Run the postgres-dialect SQL on a PostgreSQL server instead of the local data:
+        /// `postgres://USER@HOST:PORT/DB`. Missing parts and the password come from PGHOST,
+        /// PGPORT, PGUSER, PGDATABASE, PGPASSWORD or the password file (PGPASSFILE, ~/.pgpass).
+        #[arg(long, value_name = "URL", conflicts_with = "stats")]
+        engine: Option<String>,
     },
     /// What a catalog change does: definitions, affected experiments and reports, SQL and numbers.
     Diff {
@@ -352,6 +357,7 @@ fn dispatch(args: &Args) -> Result<(), Failure> {
             no_cuped,
             sequential,
             stats,
+            engine,
         } => {
             if !(*alpha > 0.0 && *alpha < 1.0) {
                 return Err(usage(format!("--alpha must be between 0 and 1, got {alpha}")));
@@ -361,9 +367,10 @@ fn dispatch(args: &Args) -> Result<(), Failure> {
                 cuped: !no_cuped,
                 sequential: *sequential,
             };
-            let (text, blocked) = match stats {
-                Some(file) => analyze_stats(args, experiment, file, options, *format)?,
-                None => analyze(args, &workspace_dir(args), experiment, by, options, *format)?,
+            let (text, blocked) = match (stats, engine) {
+                (Some(file), _) => analyze_stats(args, experiment, file, options, *format)?,
+                (None, Some(url)) => analyze_postgres(args, experiment, by, url, options, *format)?,
+                (None, None) => analyze(args, &workspace_dir(args), experiment, by, options, *format)?,
             };
             emit(&text);
             if blocked {
@@ -489,6 +496,131 @@ fn check(args: &Args, format: Format, deny_warnings: bool) -> Result<(), Failure
         ws.dialect
     ));
     Ok(())
+}
+
+/// Connection settings for `--engine`: the URL, completed from libpq's environment variables
+/// and password file. Reading the environment is the command line's job.
+#[cfg(feature = "postgres")]
+fn postgres_config(url: &str) -> Result<postgres::Config, Failure> {
+    let mut config: postgres::Config = url.parse().map_err(|e| {
+        usage(format!(
+            "--engine: not a PostgreSQL URL ({e}); write postgres://USER@HOST:PORT/DB"
+        ))
+    })?;
+    let env = |k: &str| std::env::var(k).ok().filter(|v| !v.is_empty());
+    if config.get_hosts().is_empty() {
+        config.host(&env("PGHOST").unwrap_or_else(|| "localhost".into()));
+    }
+    if config.get_ports().is_empty()
+        && let Some(p) = env("PGPORT").and_then(|p| p.parse::<u16>().ok())
+    {
+        config.port(p);
+    }
+    if config.get_user().is_none() {
+        let user = env("PGUSER")
+            .or_else(|| env("USER"))
+            .unwrap_or_else(|| "postgres".into());
+        config.user(&user);
+    }
+    if config.get_dbname().is_none()
+        && let Some(db) = env("PGDATABASE")
+    {
+        config.dbname(&db);
+    }
+    if config.get_password().is_none() {
+        if let Some(pw) = env("PGPASSWORD") {
+            config.password(pw);
+        } else if let Some(pw) = password_from_file(&config, env("PGPASSFILE"), env("HOME")) {
+            config.password(pw);
+        }
+    }
+    Ok(config)
+}
+
+/// The first matching line `host:port:database:user:password` of the password file
+/// (`*` matches anything; `\:` and `\\` are escapes), as libpq reads it.
+#[cfg(feature = "postgres")]
+fn password_from_file(
+    config: &postgres::Config,
+    file: Option<String>,
+    home: Option<String>,
+) -> Option<String> {
+    let path = file
+        .map(PathBuf::from)
+        .or_else(|| home.map(|h| PathBuf::from(h).join(".pgpass")))?;
+    let text = std::fs::read_to_string(path).ok()?;
+    let host = match config.get_hosts().first() {
+        Some(postgres::config::Host::Tcp(h)) => h.clone(),
+        _ => "localhost".into(),
+    };
+    let port = config.get_ports().first().copied().unwrap_or(5432).to_string();
+    let db = config.get_dbname().unwrap_or("").to_string();
+    let user = config.get_user().unwrap_or("").to_string();
+    for line in text.lines().filter(|l| !l.trim_start().starts_with('#')) {
+        let mut fields = Vec::new();
+        let mut field = String::new();
+        let mut chars = line.chars();
+        while let Some(c) = chars.next() {
+            match c {
+                '\\' => field.extend(chars.next()),
+                ':' if fields.len() < 4 => fields.push(std::mem::take(&mut field)),
+                c => field.push(c),
+            }
+        }
+        fields.push(field);
+        if fields.len() != 5 {
+            continue;
+        }
+        let ok = |pattern: &str, value: &str| pattern == "*" || pattern == value;
+        if ok(&fields[0], &host) && ok(&fields[1], &port) && ok(&fields[2], &db) && ok(&fields[3], &user) {
+            return Some(fields[4].clone());
+        }
+    }
+    None
+}
+
+#[cfg(not(feature = "postgres"))]
+fn analyze_postgres(
+    _: &Args,
+    _: &str,
+    _: &[String],
+    _: &str,
+    _: crate::ReadoutOptions,
+    _: Format,
+) -> Result<(String, bool), Failure> {
+    Err(usage("this plumb was built without the `postgres` feature"))
+}
+
+/// The readout with the postgres-dialect SQL run on a PostgreSQL server (`--engine`).
+#[cfg(feature = "postgres")]
+fn analyze_postgres(
+    args: &Args,
+    experiment: &str,
+    by: &[String],
+    url: &str,
+    options: crate::ReadoutOptions,
+    format: Format,
+) -> Result<(String, bool), Failure> {
+    let mut sources = SourceMap::new();
+    let (ws, _) = open(&workspace_dir(args), &mut sources)?;
+    let id = find_experiment(&ws, experiment)?;
+    let by = find_segments(&ws, by)?;
+    let dialect = load_dialect(args, "postgres")?;
+    let (plan, sql) =
+        crate::compile_experiment(&ws.catalog, id, &by, &dialect).map_err(|e| usage(e.to_string()))?;
+    let config = postgres_config(url)?;
+    let rows = crate::execute::postgres::Server::connect(&config)
+        .and_then(|mut server| server.query(&sql))
+        .map_err(|e| usage(e.to_string()))?;
+    let table = crate::execute::stats_table(&plan, &rows).map_err(|e| usage(e.to_string()))?;
+    let spec = crate::readout_spec(&ws.catalog, id, &plan, options);
+    let readout = crate::stats::readout::build(&spec, &table);
+    let blocked = readout.void || !readout.guardrails_failed.is_empty();
+    let text = match format {
+        Format::Table => crate::output::readout_text(&readout),
+        Format::Json => crate::output::readout_json(&readout),
+    };
+    Ok((text, blocked))
 }
 
 /// The readout from a statistics table exported from a warehouse (`analyze --stats FILE`).

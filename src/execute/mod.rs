@@ -1,12 +1,14 @@
 //! Stage 6, `execute`: runs rendered SQL and returns the small statistics table.
 //!
 //! The only module that touches a database (DuckDB, embedded, behind the default `engine`
-//! feature). It also turns the named columns of the returned rows into a typed
+//! feature; a PostgreSQL server behind the default `postgres` feature). It also turns the named columns of the returned rows into a typed
 //! [`StatsTable`], checking that every column the plan asked for came back, so a short or
 //! renamed result can never be read as zeros.
 
 #[cfg(feature = "engine")]
 pub mod duckdb;
+#[cfg(feature = "postgres")]
+pub mod postgres;
 
 use crate::plan::ExperimentPlan;
 use crate::stats::Moments;

@@ -1,0 +1,53 @@
+//! A PostgreSQL server as the engine (`plumb analyze --engine postgres://...`).
+//!
+//! Runs the postgres-dialect SQL with the simple query protocol, which returns every value as
+//! text (numeric sums, timestamps and floats alike), so no server type needs a Rust mapping.
+//! Connection settings are assembled by the command line (URL, libpq environment variables,
+//! password file); they are never printed: errors name the user and database only.
+
+use super::{Cell, ExecuteError, NamedRow};
+use postgres::{Client, Config, NoTls, SimpleQueryMessage};
+
+/// An open connection.
+pub struct Server {
+    client: Client,
+}
+
+impl Server {
+    pub fn connect(config: &Config) -> Result<Server, ExecuteError> {
+        let client = config.connect(NoTls).map_err(|e| {
+            ExecuteError(format!(
+                "cannot connect to PostgreSQL as user {} to database {}: {e}",
+                config.get_user().unwrap_or("(default)"),
+                config.get_dbname().unwrap_or("(default)")
+            ))
+        })?;
+        Ok(Server { client })
+    }
+
+    /// Runs one statement and returns its rows by (lowercased) column name.
+    pub fn query(&mut self, sql: &str) -> Result<Vec<NamedRow>, ExecuteError> {
+        let messages = self
+            .client
+            .simple_query(sql)
+            .map_err(|e| ExecuteError(format!("PostgreSQL: {e}")))?;
+        let mut out = Vec::new();
+        for m in messages {
+            if let SimpleQueryMessage::Row(row) = m {
+                let mut named = NamedRow::new();
+                for (i, col) in row.columns().iter().enumerate() {
+                    let cell = match row.get(i) {
+                        None => Cell::Null,
+                        Some(t) => match t.parse::<f64>() {
+                            Ok(x) => Cell::Number(x),
+                            Err(_) => Cell::Text(t.to_string()),
+                        },
+                    };
+                    named.insert(col.name().to_ascii_lowercase(), cell);
+                }
+                out.push(named);
+            }
+        }
+        Ok(out)
+    }
+}
