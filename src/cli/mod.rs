@@ -614,13 +614,20 @@ fn analyze_postgres(
         .map_err(|e| usage(e.to_string()))?;
     let table = crate::execute::stats_table(&plan, &rows).map_err(|e| usage(e.to_string()))?;
     let spec = crate::readout_spec(&ws.catalog, id, &plan, options);
-    let readout = crate::stats::readout::build(&spec, &table);
+    Ok(format_readout(
+        &crate::stats::readout::build(&spec, &table),
+        format,
+    ))
+}
+
+/// The readout as text or JSON, and whether it must block a decision (exit code 3).
+fn format_readout(readout: &crate::stats::readout::Readout, format: Format) -> (String, bool) {
     let blocked = readout.void || !readout.guardrails_failed.is_empty();
     let text = match format {
-        Format::Table => crate::output::readout_text(&readout),
-        Format::Json => crate::output::readout_json(&readout),
+        Format::Table => crate::output::readout_text(readout),
+        Format::Json => crate::output::readout_json(readout),
     };
-    Ok((text, blocked))
+    (text, blocked)
 }
 
 /// The readout from a statistics table exported from a warehouse (`analyze --stats FILE`).
@@ -639,13 +646,10 @@ fn analyze_stats(
     crate::execute::check_fingerprint(&plan, &rows).map_err(|e| usage(e.to_string()))?;
     let table = crate::execute::stats_table(&plan, &rows).map_err(|e| usage(e.to_string()))?;
     let spec = crate::readout_spec(&ws.catalog, id, &plan, options);
-    let readout = crate::stats::readout::build(&spec, &table);
-    let blocked = readout.void || !readout.guardrails_failed.is_empty();
-    let text = match format {
-        Format::Table => crate::output::readout_text(&readout),
-        Format::Json => crate::output::readout_json(&readout),
-    };
-    Ok((text, blocked))
+    Ok(format_readout(
+        &crate::stats::readout::build(&spec, &table),
+        format,
+    ))
 }
 
 #[cfg(not(feature = "engine"))]
@@ -731,12 +735,7 @@ fn analyze(
             / days;
         crate::stats::readout::add_population_impact(&mut readout, triggered, &population);
     }
-    let blocked = readout.void || !readout.guardrails_failed.is_empty();
-    let text = match format {
-        Format::Table => crate::output::readout_text(&readout),
-        Format::Json => crate::output::readout_json(&readout),
-    };
-    Ok((text, blocked))
+    Ok(format_readout(&readout, format))
 }
 
 /// Runs git in `dir`; its failure is a usage error.
