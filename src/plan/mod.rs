@@ -161,17 +161,9 @@ pub fn plan_experiment(
     extra_segments: &[ir::SegmentId],
 ) -> ExperimentPlan {
     let exp = &catalog.experiments[experiment];
-    let log = &catalog.exposure_logs[exp.exposures];
     let mut plan = ExperimentPlan {
         experiment: exp.name.clone(),
-        exposures: ExposureScan {
-            source: log.source.clone(),
-            id: log.id.clone(),
-            time: log.time.clone(),
-            experiment_column: log.experiment.clone(),
-            arm_column: log.arm.clone(),
-            key: exp.key.clone(),
-        },
+        exposures: exposure_scan(catalog, experiment),
         start: exp.start,
         end: exp.end,
         scans: Vec::new(),
@@ -239,6 +231,20 @@ pub fn plan_experiment(
         plan.segments.push(planned_segment(catalog, id));
     }
     plan
+}
+
+/// How to read an experiment's exposures: its exposure log's columns and its key.
+fn exposure_scan(catalog: &Catalog, experiment: ir::ExperimentId) -> ExposureScan {
+    let exp = &catalog.experiments[experiment];
+    let log = &catalog.exposure_logs[exp.exposures];
+    ExposureScan {
+        source: log.source.clone(),
+        id: log.id.clone(),
+        time: log.time.clone(),
+        experiment_column: log.experiment.clone(),
+        arm_column: log.arm.clone(),
+        key: exp.key.clone(),
+    }
 }
 
 /// A segment as the plan needs it: its per-unit column and where its value comes from.
@@ -490,17 +496,9 @@ pub fn plan_report(
 ) -> ReportPlan {
     let exposed = exposed_in.map(|id| {
         let exp = &catalog.experiments[id];
-        let log = &catalog.exposure_logs[exp.exposures];
         ExposedIn {
             experiment: exp.name.clone(),
-            exposures: ExposureScan {
-                source: log.source.clone(),
-                id: log.id.clone(),
-                time: log.time.clone(),
-                experiment_column: log.experiment.clone(),
-                arm_column: log.arm.clone(),
-                key: exp.key.clone(),
-            },
+            exposures: exposure_scan(catalog, id),
             start: exp.start,
             end: exp.end,
         }
