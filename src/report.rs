@@ -6,7 +6,8 @@
 //! or CSV. The query itself is compiled by `plan::plan_report` and `render` from the same
 //! metric definitions as the readout query.
 
-use crate::execute::{Cell, ExecuteError, NamedRow};
+use crate::error::{Error, Result};
+use crate::execute::{Cell, NamedRow};
 use crate::plan::{ReportMetricKind, ReportPlan};
 use crate::time::Timestamp;
 use serde::Serialize;
@@ -48,18 +49,18 @@ fn number(row: &NamedRow, col: &str) -> f64 {
 }
 
 /// Period start of a result cell: seconds since the epoch or an ISO text.
-fn period(row: &NamedRow) -> Result<Timestamp, ExecuteError> {
+fn period(row: &NamedRow) -> Result<Timestamp> {
     match row.get("period_start") {
         Some(Cell::Number(x)) => Ok(Timestamp(*x as i64)),
         Some(Cell::Text(t)) => Timestamp::parse(t.trim_end_matches(".000000").trim_end_matches("+00"))
-            .map_err(|e| ExecuteError(format!("period_start: {e}"))),
-        _ => Err(ExecuteError("the report result has no period_start".into())),
+            .map_err(|e| Error::data(format!("period_start: {e}"))),
+        _ => Err(Error::data("the report result has no period_start")),
     }
 }
 
 /// Assembles report rows: every period from `from` to `to` for every metric and every segment
 /// value seen (zero rows where a period has no data).
-pub fn assemble(plan: &ReportPlan, rows: &[NamedRow]) -> Result<Vec<ReportRow>, ExecuteError> {
+pub fn assemble(plan: &ReportPlan, rows: &[NamedRow]) -> Result<Vec<ReportRow>> {
     // (metric, segment value, period) -> part -> (units, total)
     type Key = (String, Option<String>, Timestamp);
     let mut cells: BTreeMap<Key, BTreeMap<String, (u64, f64)>> = BTreeMap::new();
@@ -69,7 +70,7 @@ pub fn assemble(plan: &ReportPlan, rows: &[NamedRow]) -> Result<Vec<ReportRow>, 
             .iter()
             .map(|(k, v)| (k.to_ascii_lowercase(), v.clone()))
             .collect();
-        let metric = text(&row, "metric").ok_or_else(|| ExecuteError("a report row has no metric".into()))?;
+        let metric = text(&row, "metric").ok_or_else(|| Error::data("a report row has no metric"))?;
         let part = text(&row, "part").unwrap_or_default();
         let segment = text(&row, "segment_value");
         if !segment_values.contains(&segment) {

@@ -2,19 +2,30 @@
 //!
 //! Ties the load and resolve stages together for commands that start from a folder, and
 //! resolves relative paths in `local:` against the workspace folder so commands behave the
-//! same whichever directory they are run from.
+//! same whichever directory they are run from. Opening is split in two steps, [`load`] and
+//! [`Loaded::resolve`], so that the caller (the `Context`) can read the local tables' schemas
+//! with the same engine it later runs the queries on: one DuckDB per command.
+//!
+//! There is one way to get a catalog from text: [`resolve_texts`] (load + resolve), which
+//! [`Loaded::resolve`] extends with local schemas, workspace checks and lint.
 
 use crate::diagnostics::Diagnostic;
+use crate::error::{Error, Result};
 use crate::ir;
-use crate::load::{self, LoadError, yaml::Seg};
+use crate::load::{self, RawCatalog, RawWorkspace, yaml::Seg};
 use crate::resolve;
 use crate::source::SourceMap;
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
+/// Column names of local tables, by table name (checked against SQL fragments).
+pub type Schemas = BTreeMap<String, Vec<String>>;
+
 #[derive(Debug)]
 pub struct Workspace {
     pub root: PathBuf,
+    /// The catalog as written (with spans), for located messages after resolve.
+    pub raw: RawCatalog,
     pub catalog: ir::Catalog,
     /// Default dialect (`dialect:`), `duckdb` when absent.
     pub dialect: String,
@@ -30,65 +41,135 @@ pub enum Opened {
     Invalid(Vec<Diagnostic>),
 }
 
-/// Schemas of the local tables, when the engine is built in and the data can be opened; an
-/// empty map otherwise (fragments are then checked against declared `columns:` only).
-#[cfg(feature = "engine")]
-fn local_schemas(ws: &load::RawWorkspace) -> BTreeMap<String, Vec<String>> {
-    let local = ws.value.local.clone().unwrap_or_default();
-    let database = local
-        .database
-        .as_ref()
-        .map(|p| ws.root.join(p))
-        .filter(|p| p.is_file());
-    let tables: Vec<(String, PathBuf)> = local
-        .tables
-        .map(|t| {
-            t.0.into_iter()
-                .map(|(n, p)| (n, ws.root.join(p)))
-                .filter(|(_, p)| p.is_file())
-                .collect()
-        })
-        .unwrap_or_default();
-    if database.is_none() && tables.is_empty() {
-        return BTreeMap::new();
+/// The local data named in `plumb.yaml`, with paths resolved against the workspace.
+#[derive(Debug, Clone, Default)]
+pub struct LocalData {
+    pub database: Option<PathBuf>,
+    pub tables: Vec<(String, PathBuf)>,
+}
+
+impl LocalData {
+    /// True when nothing is declared.
+    pub fn is_empty(&self) -> bool {
+        self.database.is_none() && self.tables.is_empty()
     }
-    crate::execute::duckdb::local_schemas(database.as_deref(), &tables).unwrap_or_default()
-}
 
-#[cfg(not(feature = "engine"))]
-fn local_schemas(_: &load::RawWorkspace) -> BTreeMap<String, Vec<String>> {
-    BTreeMap::new()
-}
+    /// True when every declared file exists (so an engine opened on it is the real one).
+    pub fn complete(&self) -> bool {
+        self.database.as_ref().is_none_or(|p| p.is_file()) && self.tables.iter().all(|(_, p)| p.is_file())
+    }
 
-/// Loads and resolves the workspace in `dir`.
-pub fn open(dir: &Path, sources: &mut SourceMap) -> Result<Opened, LoadError> {
-    let (raw_ws, raw_catalog, mut diags) = load::load_workspace(dir, sources)?;
-    let files = sources.files().count().saturating_sub(1);
-    let schemas = local_schemas(&raw_ws);
-    let catalog = match resolve::resolve_with_schemas(sources, &raw_catalog, &schemas) {
-        Ok(c) => Some(c),
-        Err(more) => {
-            diags.extend(more);
-            None
+    /// Only the files that exist (enough to check columns of the tables that are there).
+    pub fn present(&self) -> LocalData {
+        LocalData {
+            database: self.database.clone().filter(|p| p.is_file()),
+            tables: self.tables.iter().filter(|(_, p)| p.is_file()).cloned().collect(),
         }
-    };
-    let local = raw_ws.value.local.clone().unwrap_or_default();
-    let local_database = local.database.as_ref().map(|p| raw_ws.root.join(p));
-    if let Some(db) = &local_database
-        && !db.is_file()
-    {
-        diags.push(
-            Diagnostic::error("E005", format!("local database {} does not exist", db.display()))
-                .at(raw_ws.value_span(&[Seg::Key("local".into()), Seg::Key("database".into())]))
-                .hint("fix the path (relative to plumb.yaml) or remove `database:`"),
-        );
     }
-    let local_tables = local
-        .tables
-        .map(|t| t.0.into_iter().map(|(n, p)| (n, raw_ws.root.join(p))).collect())
-        .unwrap_or_default();
-    let dialect = raw_ws.value.dialect.clone().unwrap_or_else(|| "duckdb".into());
-    let levels = raw_ws.value.lint.clone().map(|l| l.0).unwrap_or_default();
+}
+
+/// A workspace after the load stage: `plumb.yaml` and the catalog files as written.
+pub struct Loaded {
+    pub raw_ws: RawWorkspace,
+    pub raw_catalog: RawCatalog,
+    pub diagnostics: Vec<Diagnostic>,
+    pub local: LocalData,
+    pub files: usize,
+}
+
+/// Reads `plumb.yaml` in `dir` and the catalog files (the load stage).
+pub fn load(dir: &Path, sources: &mut SourceMap) -> Result<Loaded> {
+    let (raw_ws, raw_catalog, diagnostics) =
+        load::load_workspace(dir, sources).map_err(|e| Error::usage(e.to_string()))?;
+    let files = sources.files().count().saturating_sub(1);
+    let local = raw_ws.value.local.clone().unwrap_or_default();
+    let local = LocalData {
+        database: local.database.as_ref().map(|p| raw_ws.root.join(p)),
+        tables: local
+            .tables
+            .map(|t| t.0.into_iter().map(|(n, p)| (n, raw_ws.root.join(p))).collect())
+            .unwrap_or_default(),
+    };
+    Ok(Loaded {
+        raw_ws,
+        raw_catalog,
+        diagnostics,
+        local,
+        files,
+    })
+}
+
+/// A warning: the local data could not be read, so columns are checked against `columns:` only.
+pub fn unreadable_local_data(raw_ws: &RawWorkspace, error: &Error) -> Diagnostic {
+    Diagnostic {
+        severity: crate::diagnostics::Severity::Warning,
+        code: "W001",
+        message: format!("cannot read the local data to check columns: {error}"),
+        span: raw_ws.value_span(&[Seg::Key("local".into())]),
+        labels: Vec::new(),
+        hints: vec![
+            "SQL fragments were checked against declared `columns:` only; fix the file or its path under `local:`".into(),
+        ],
+    }
+}
+
+impl Loaded {
+    /// The resolve stage with the local tables' `schemas`, then the workspace's own checks and
+    /// lint (with the severities set in `plumb.yaml`).
+    pub fn resolve(self, sources: &SourceMap, schemas: &Schemas) -> Opened {
+        let Loaded {
+            raw_ws,
+            raw_catalog,
+            mut diagnostics,
+            local,
+            files,
+        } = self;
+        let catalog = match resolve::resolve_with_schemas(sources, &raw_catalog, schemas) {
+            Ok(c) => Some(c),
+            Err(more) => {
+                diagnostics.extend(more);
+                None
+            }
+        };
+        if let Some(db) = &local.database
+            && !db.is_file()
+        {
+            diagnostics.push(
+                Diagnostic::error("E005", format!("local database {} does not exist", db.display()))
+                    .at(raw_ws.value_span(&[Seg::Key("local".into()), Seg::Key("database".into())]))
+                    .hint("fix the path (relative to plumb.yaml) or remove `database:`"),
+            );
+        }
+        let dialect = raw_ws.value.dialect.clone().unwrap_or_else(|| "duckdb".into());
+        let levels = raw_ws.value.lint.clone().map(|l| l.0).unwrap_or_default();
+        check_lint_levels(&raw_ws, &levels, &mut diagnostics);
+        if let Some(c) = &catalog
+            && !diagnostics.iter().any(Diagnostic::is_error)
+        {
+            diagnostics.extend(crate::lint::apply_levels(
+                crate::lint::lint(&raw_catalog, c),
+                &levels,
+            ));
+        }
+        if diagnostics.iter().any(Diagnostic::is_error) {
+            return Opened::Invalid(diagnostics);
+        }
+        Opened::Ok(
+            Box::new(Workspace {
+                root: raw_ws.root,
+                raw: raw_catalog,
+                catalog: catalog.unwrap_or_default(),
+                dialect,
+                local_database: local.database,
+                local_tables: local.tables,
+                files,
+            }),
+            diagnostics,
+        )
+    }
+}
+
+fn check_lint_levels(raw_ws: &RawWorkspace, levels: &[(String, String)], diags: &mut Vec<Diagnostic>) {
     for (i, (key, level)) in levels.iter().enumerate() {
         let known = crate::lint::RULES.iter().any(|r| r.code == key || r.name == key);
         let span = raw_ws.value_span(&[Seg::Key("lint".into())]);
@@ -117,26 +198,48 @@ pub fn open(dir: &Path, sources: &mut SourceMap) -> Result<Opened, LoadError> {
             );
         }
     }
-    if let Some(c) = &catalog
-        && !diags.iter().any(Diagnostic::is_error)
+}
+
+/// Loads and resolves the workspace in `dir`, checking fragments against the local tables
+/// (read with a DuckDB opened for that alone; a `Context` reuses its engine instead).
+pub fn open(dir: &Path, sources: &mut SourceMap) -> Result<Opened> {
+    let mut loaded = load(dir, sources)?;
+    let schemas = match local_schemas(&loaded.local.present()) {
+        Ok(s) => s,
+        Err(e) => {
+            loaded.diagnostics.push(unreadable_local_data(&loaded.raw_ws, &e));
+            Schemas::new()
+        }
+    };
+    Ok(loaded.resolve(sources, &schemas))
+}
+
+/// Schemas of the local tables (empty without the engine feature or without local data).
+pub fn local_schemas(local: &LocalData) -> Result<Schemas> {
+    if local.is_empty() {
+        return Ok(Schemas::new());
+    }
+    #[cfg(feature = "engine")]
     {
-        diags.extend(crate::lint::apply_levels(
-            crate::lint::lint(&raw_catalog, c),
-            &levels,
-        ));
+        crate::execute::duckdb::LocalEngine::open(local.database.as_deref(), &local.tables)?.schemas()
     }
-    if diags.iter().any(Diagnostic::is_error) {
-        return Ok(Opened::Invalid(diags));
+    #[cfg(not(feature = "engine"))]
+    Ok(Schemas::new())
+}
+
+/// Loads and resolves catalog files given as `(path, text)` (e.g. read from git objects).
+/// Fragments are checked against declared `columns:` only: today's local data need not match
+/// another revision's definitions.
+pub fn resolve_texts(files: &[(String, String)]) -> Result<(RawCatalog, ir::Catalog)> {
+    let mut sources = SourceMap::new();
+    let refs: Vec<(&str, &str)> = files.iter().map(|(p, t)| (p.as_str(), t.as_str())).collect();
+    let (raw, mut diags) = load::load_catalog_texts(&refs, &mut sources);
+    match resolve::resolve(&sources, &raw) {
+        Ok(c) if !diags.iter().any(Diagnostic::is_error) => Ok((raw, c)),
+        Ok(_) => Err(Error::catalog(sources, diags)),
+        Err(more) => {
+            diags.extend(more);
+            Err(Error::catalog(sources, diags))
+        }
     }
-    Ok(Opened::Ok(
-        Box::new(Workspace {
-            root: raw_ws.root,
-            catalog: catalog.unwrap_or_default(),
-            dialect,
-            local_database,
-            local_tables,
-            files,
-        }),
-        diags,
-    ))
 }

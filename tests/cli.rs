@@ -288,3 +288,44 @@ fn schema_lists_exactly_the_keys_the_loader_accepts() {
         );
     }
 }
+
+/// A dialect without GROUPING SETS cannot compute an experiment's declared segments: that is
+/// a located catalog error (exit 1) naming the experiment's `segments:`, not an internal one.
+#[test]
+fn segments_on_a_dialect_without_grouping_sets_is_a_located_error() {
+    let body = "segments:\n  - name: device\n    from_exposure: device\n\nexperiments:\n  - name: sliced\n    exposures: assignments\n    control: a\n    split: {a: 1, b: 1}\n    start: 2026-03-02\n    end: 2026-03-09\n    primary: [orders]\n    segments: [device]\n  - name: plain\n    exposures: assignments\n    control: a\n    split: {a: 1, b: 1}\n    start: 2026-03-02\n    end: 2026-03-09\n    primary: [orders]\n";
+    let ws = workspace(&[("sliced.yaml", body)]);
+    let flat = ws.path().join("dialects/flat");
+    std::fs::create_dir_all(&flat).unwrap();
+    std::fs::write(flat.join("dialect.yaml"), "grouping_sets: false\n").unwrap();
+    let out = plumb(
+        ws.path(),
+        &["--dialects-dir", "dialects", "sql", "sliced", "--dialect", "flat"],
+    );
+    assert_eq!(out.status.code(), Some(1), "{}", text(&out.stderr));
+    let stderr = text(&out.stderr);
+    assert!(stderr.contains("metrics/sliced.yaml:13:5"), "{stderr}");
+    assert!(stderr.contains("has no GROUPING SETS"), "{stderr}");
+    // Extra segments from a flag are a usage error (exit 2): there is no line to point at.
+    let out = plumb(
+        ws.path(),
+        &[
+            "--dialects-dir",
+            "dialects",
+            "sql",
+            "plain",
+            "--dialect",
+            "flat",
+            "--by",
+            "device",
+        ],
+    );
+    assert_eq!(out.status.code(), Some(2), "{}", text(&out.stderr));
+    assert!(text(&out.stderr).contains("has no GROUPING SETS"));
+    // Without segments the same dialect compiles.
+    let out = plumb(
+        ws.path(),
+        &["--dialects-dir", "dialects", "sql", "plain", "--dialect", "flat"],
+    );
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+}

@@ -4,7 +4,7 @@
 //! in DuckDB's plan, and exact edge cases (boundaries, NULLs, time zones).
 #![cfg(feature = "engine")]
 
-use plumb::execute::duckdb::Engine;
+use plumb::execute::duckdb::LocalEngine;
 use plumb::source::SourceMap;
 use plumb::stats::readout::StatsTable;
 use std::collections::BTreeMap;
@@ -386,7 +386,7 @@ fn run_every_kind(users: usize) -> (StatsTable, plumb::plan::ExperimentPlan, Dat
         .iter()
         .map(|t| (t.to_string(), dir.path().join(format!("{t}.csv"))))
         .collect();
-    let engine = Engine::open(None, &tables).unwrap();
+    let engine = LocalEngine::open(None, &tables).unwrap();
     let rows = engine.query(&sql).unwrap();
     (plumb::execute::stats_table(&plan, &rows).unwrap(), plan, data)
 }
@@ -493,7 +493,7 @@ fn one_scan_per_event_table_with_twenty_metrics() {
     let catalog = plumb::resolve::resolve(&sources, &raw).unwrap();
     let dialect = plumb::render::Dialect::load("duckdb", None).unwrap();
     let (_, sql) = plumb::compile_experiment(&catalog, 0, &[], &dialect).unwrap();
-    let engine = Engine::open(None, &[]).unwrap();
+    let engine = LocalEngine::open(None, &[]).unwrap();
     engine
         .execute_batch(
             "CREATE TABLE purchases (user_id VARCHAR, \"at\" TIMESTAMP);
@@ -580,7 +580,7 @@ fn timestamps_with_and_without_zone_give_the_same_numbers() {
             ("ex".to_string(), dir.path().join("ex.csv")),
             ("ev".to_string(), dir.path().join("ev.csv")),
         ];
-        let engine = Engine::open(None, &tables).unwrap();
+        let engine = LocalEngine::open(None, &tables).unwrap();
         plumb::execute::stats_table(&plan, &engine.query(&sql).unwrap()).unwrap()
     };
     let utc = run("", 0);
@@ -661,7 +661,7 @@ fn nist_variance_numerics_through_duckdb() {
             ("ex".to_string(), dir.path().join("ex.csv")),
             ("ev".to_string(), dir.path().join("ev.csv")),
         ];
-        let engine = Engine::open(None, &tables).unwrap();
+        let engine = LocalEngine::open(None, &tables).unwrap();
         let table = plumb::execute::stats_table(&plan, &engine.query(&sql).unwrap()).unwrap();
         let a = table.rows.iter().find(|r| r.arm == "a").unwrap().columns["y"];
         assert!(((a.mean - mean) / mean).abs() < 1e-14, "{file} mean {}", a.mean);

@@ -170,3 +170,28 @@ fn report_queries_parse_in_every_dialect() {
         }
     }
 }
+
+/// The fingerprint is a contract with warehouse exports (`analyze --stats`): it must change
+/// only on purpose. Its canonical text is snapshotted so a review shows what is hashed, and
+/// the demo's fingerprints are pinned here; bump `plan::STATS_LAYOUT` or note the change in
+/// README when they must move. (Changed deliberately when the canonical text replaced the
+/// `Debug` form of internal structs.)
+#[test]
+fn demo_fingerprints_are_pinned() {
+    let mut sources = SourceMap::new();
+    let (raw, _) = load_catalog_texts(&[("plant_shop.yaml", plumb::demo::CATALOG[0].1)], &mut sources);
+    let catalog = plumb::resolve::resolve(&sources, &raw).unwrap();
+    let fp = |name: &str, by: &[usize]| {
+        let plan = plumb::plan::plan_experiment(&catalog, catalog.experiment(name).unwrap(), by);
+        (
+            plumb::plan::fingerprint(&plan),
+            plumb::plan::canonical_text(&plan),
+        )
+    };
+    let (main, text) = fp("one_page_checkout", &[]);
+    assert_eq!(main, "fpcea2e07cadc61970");
+    assert_eq!(fp("care_guide_banner", &[]).0, "fpba2f7969209b3123");
+    // Extra segments change what is computed, so they change the fingerprint.
+    assert_ne!(fp("care_guide_banner", &[0]).0, fp("care_guide_banner", &[]).0);
+    insta::assert_snapshot!("demo_one_page_checkout_canonical_text", text);
+}

@@ -5,7 +5,7 @@
 //! from those values in plain Rust and compares them with what the compiled SQL returned.
 #![cfg(feature = "engine")]
 
-use plumb::execute::duckdb::Engine;
+use plumb::execute::duckdb::LocalEngine;
 use plumb::source::SourceMap;
 use plumb::stats::Moments;
 use std::path::Path;
@@ -76,7 +76,7 @@ fn handmade_dataset_matches_hand_computation() {
     let dialect = plumb::render::Dialect::load("duckdb", None).unwrap();
     let id = ws.catalog.experiment("exp").unwrap();
     let (plan, sql) = plumb::compile_experiment(&ws.catalog, id, &[], &dialect).unwrap();
-    let engine = Engine::open(None, &ws.local_tables).unwrap();
+    let engine = LocalEngine::open(None, &ws.local_tables).unwrap();
     let rows = engine.query(&sql).unwrap();
     let table = plumb::execute::stats_table(&plan, &rows).unwrap();
 
@@ -339,7 +339,7 @@ fn statistics_table_hand_off_gives_the_same_readout() {
         plumb::workspace::Opened::Ok(ws, _) => ws,
         plumb::workspace::Opened::Invalid(_) => panic!("demo catalog invalid"),
     };
-    let engine = Engine::open(None, &ws.local_tables).unwrap();
+    let engine = LocalEngine::open(None, &ws.local_tables).unwrap();
     let id = ws.catalog.experiment("one_page_checkout").unwrap();
     let mut tables = Vec::new();
     for dialect in ["duckdb", "postgres", "generic"] {

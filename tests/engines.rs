@@ -148,7 +148,7 @@ fn compare_with_duckdb(ws: &Path, exp: &str, stats: &Path) {
     let id = w.catalog.experiment(exp).unwrap();
     let dialect = plumb::render::Dialect::load("duckdb", None).unwrap();
     let (plan, duck_sql) = plumb::compile_experiment(&w.catalog, id, &[], &dialect).unwrap();
-    let engine = plumb::execute::duckdb::Engine::open(None, &w.local_tables).unwrap();
+    let engine = plumb::execute::duckdb::LocalEngine::open(None, &w.local_tables).unwrap();
     let duck = plumb::execute::stats_table(&plan, &engine.query(&duck_sql).unwrap()).unwrap();
     let other = plumb::execute::stats_table(&plan, &plumb::execute::read_stats_file(stats).unwrap()).unwrap();
     assert_eq!(duck.excluded_multiple_arms, other.excluded_multiple_arms);

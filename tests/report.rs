@@ -1,7 +1,7 @@
 //! Reports from the same definitions as readouts: the numbers must agree exactly.
 #![cfg(feature = "engine")]
 
-use plumb::execute::duckdb::Engine;
+use plumb::execute::duckdb::LocalEngine;
 use plumb::source::SourceMap;
 use std::path::Path;
 
@@ -24,7 +24,7 @@ fn open(dir: &Path) -> plumb::workspace::Workspace {
 fn both_totals(dir: &Path, metrics: &[&str]) -> Vec<(f64, f64)> {
     let ws = open(dir);
     let dialect = plumb::render::Dialect::load("duckdb", None).unwrap();
-    let engine = Engine::open(ws.local_database.as_deref(), &ws.local_tables).unwrap();
+    let engine = LocalEngine::open(ws.local_database.as_deref(), &ws.local_tables).unwrap();
     let exp = ws.catalog.experiment("one_page_checkout").unwrap();
     let (plan, sql) = plumb::compile_experiment(&ws.catalog, exp, &[], &dialect).unwrap();
     let table = plumb::execute::stats_table(&plan, &engine.query(&sql).unwrap()).unwrap();

@@ -4,18 +4,24 @@
 //! views with the table's name, so the SQL that runs here is byte for byte the SQL a warehouse
 //! would run. A `local.database` file is attached read-only.
 
-use super::{Cell, ExecuteError, NamedRow};
+use super::{Cell, NamedRow};
+use crate::error::{Error, Result};
 use duckdb::types::Value;
 use duckdb::{AccessMode, Config, Connection};
 use std::path::Path;
 
 /// An open local engine.
-pub struct Engine {
+pub struct LocalEngine {
     conn: Connection,
 }
 
-fn err(context: &str, e: impl std::fmt::Display) -> ExecuteError {
-    ExecuteError(format!("{context}: {e}"))
+fn err(context: &str, e: duckdb::Error) -> Error {
+    Error::engine(format!("{context}: {e}")).with_source(e)
+}
+
+/// A local table that DuckDB cannot read is the data's problem, not the engine's.
+fn data_err(context: &str, e: duckdb::Error) -> Error {
+    Error::data(format!("{context}: {e}")).with_source(e)
 }
 
 fn ident(name: &str) -> String {
@@ -26,12 +32,9 @@ fn literal(value: &str) -> String {
     format!("'{}'", value.replace('\'', "''"))
 }
 
-impl Engine {
+impl LocalEngine {
     /// Opens DuckDB on `database` (read-only) or in memory, and maps `tables` to views.
-    pub fn open(
-        database: Option<&Path>,
-        tables: &[(String, std::path::PathBuf)],
-    ) -> Result<Engine, ExecuteError> {
+    pub fn open(database: Option<&Path>, tables: &[(String, std::path::PathBuf)]) -> Result<LocalEngine> {
         let conn = match database {
             Some(path) => {
                 let config = Config::default()
@@ -46,7 +49,7 @@ impl Engine {
         // every run, and the same inputs must give byte-identical results.
         conn.execute_batch("SET threads = 1")
             .map_err(|e| err("configuring DuckDB", e))?;
-        let engine = Engine { conn };
+        let engine = LocalEngine { conn };
         for (name, path) in tables {
             engine.register(name, path)?;
         }
@@ -54,9 +57,9 @@ impl Engine {
     }
 
     /// Makes a CSV or Parquet file visible as a view named `name`.
-    pub fn register(&self, name: &str, path: &Path) -> Result<(), ExecuteError> {
+    pub fn register(&self, name: &str, path: &Path) -> Result<()> {
         if !path.is_file() {
-            return Err(ExecuteError(format!(
+            return Err(Error::data(format!(
                 "local table `{name}`: file {} does not exist",
                 path.display()
             )));
@@ -66,7 +69,7 @@ impl Engine {
             Some("parquet") => format!("read_parquet({p})"),
             Some("csv") | Some("tsv") | Some("gz") => format!("read_csv({p}, header = true)"),
             _ => {
-                return Err(ExecuteError(format!(
+                return Err(Error::data(format!(
                     "local table `{name}`: {} is neither .csv nor .parquet",
                     path.display()
                 )));
@@ -78,7 +81,7 @@ impl Engine {
                 "CREATE OR REPLACE TEMP VIEW {} AS SELECT * FROM {reader}",
                 ident(name)
             ))
-            .map_err(|e| err(&context, e))?;
+            .map_err(|e| data_err(&context, e))?;
         // Timestamps with a zone become UTC timestamps without one, so that windows and the
         // experiment's (UTC) boundaries compare the same instants whatever the offsets written.
         let zoned: Vec<String> = self
@@ -103,13 +106,13 @@ impl Engine {
                     ident(name),
                     replace.join(", ")
                 ))
-                .map_err(|e| err(&context, e))?;
+                .map_err(|e| data_err(&context, e))?;
         }
         Ok(())
     }
 
     /// Runs one statement and returns its rows by column name.
-    pub fn query(&self, sql: &str) -> Result<Vec<NamedRow>, ExecuteError> {
+    pub fn query(&self, sql: &str) -> Result<Vec<NamedRow>> {
         let mut stmt = self
             .conn
             .prepare(sql)
@@ -123,7 +126,7 @@ impl Engine {
                 let v: Value = row.get(i).map_err(|e| err("reading the result", e))?;
                 named.insert(
                     name.clone(),
-                    cell(v).map_err(|e| err(&format!("column `{name}`"), e))?,
+                    cell(v).map_err(|e| Error::data(format!("column `{name}`: {e}")))?,
                 );
             }
             out.push(named);
@@ -132,8 +135,41 @@ impl Engine {
     }
 
     /// Runs statements that return nothing (loading test data).
-    pub fn execute_batch(&self, sql: &str) -> Result<(), ExecuteError> {
+    pub fn execute_batch(&self, sql: &str) -> Result<()> {
         self.conn.execute_batch(sql).map_err(|e| err("running SQL", e))
+    }
+
+    /// Column names of every local table (CSV/Parquet views and tables of the local
+    /// database), keyed by table name, so the resolver can check SQL fragments against real
+    /// schemas.
+    pub fn schemas(&self) -> Result<std::collections::BTreeMap<String, Vec<String>>> {
+        let rows = self.query(
+            "SELECT table_name, column_name FROM information_schema.columns \
+             ORDER BY table_name, ordinal_position",
+        )?;
+        let mut out: std::collections::BTreeMap<String, Vec<String>> = Default::default();
+        for row in rows {
+            if let (Some(Cell::Text(t)), Some(Cell::Text(c))) =
+                (row.get("table_name"), row.get("column_name"))
+            {
+                out.entry(t.clone()).or_default().push(c.clone());
+            }
+        }
+        Ok(out)
+    }
+}
+
+impl super::Engine for LocalEngine {
+    fn describe(&self) -> String {
+        "local DuckDB".into()
+    }
+
+    fn dialect(&self) -> &str {
+        "duckdb"
+    }
+
+    fn query(&mut self, sql: &str) -> Result<Vec<NamedRow>> {
+        LocalEngine::query(self, sql)
     }
 }
 
@@ -163,26 +199,4 @@ fn cell(v: Value) -> Result<Cell, String> {
         Value::Date32(days) => Cell::Number(f64::from(days) * 86_400.0),
         other => return Err(format!("unexpected value type {other:?}")),
     })
-}
-
-/// Column names of every local table (CSV/Parquet views and tables of the local database),
-/// keyed by table name, so the resolver can check SQL fragments against real schemas.
-pub fn local_schemas(
-    database: Option<&Path>,
-    tables: &[(String, std::path::PathBuf)],
-) -> Result<std::collections::BTreeMap<String, Vec<String>>, ExecuteError> {
-    let engine = Engine::open(database, tables)?;
-    let rows = engine.query(
-        "SELECT table_name, column_name FROM information_schema.columns \
-         ORDER BY table_name, ordinal_position",
-    )?;
-    let mut out: std::collections::BTreeMap<String, Vec<String>> = Default::default();
-    for row in rows {
-        if let (Some(super::Cell::Text(t)), Some(super::Cell::Text(c))) =
-            (row.get("table_name"), row.get("column_name"))
-        {
-            out.entry(t.clone()).or_default().push(c.clone());
-        }
-    }
-    Ok(out)
 }

@@ -1,15 +1,19 @@
 //! Stage 6, `execute`: runs rendered SQL and returns the small statistics table.
 //!
-//! The only module that touches a database (DuckDB, embedded, behind the default `engine`
-//! feature; a PostgreSQL server behind the default `postgres` feature). It also turns the named columns of the returned rows into a typed
-//! [`StatsTable`], checking that every column the plan asked for came back, so a short or
-//! renamed result can never be read as zeros.
+//! The only module that touches a database. Every place that runs SQL goes through the
+//! [`Engine`] trait: the embedded DuckDB ([`duckdb::LocalEngine`], behind the default `engine`
+//! feature) and a PostgreSQL server ([`postgres::PostgresEngine`], behind the default
+//! `postgres` feature); a new engine is one more implementation. This module also turns the
+//! named columns of the returned rows into a typed [`StatsTable`], checking that every column
+//! the plan asked for came back, so a short or renamed result can never be read as zeros.
 
 #[cfg(feature = "engine")]
 pub mod duckdb;
 #[cfg(feature = "postgres")]
 pub mod postgres;
 
+use crate::columns::{self, Stat};
+use crate::error::{Error, Result};
 use crate::plan::ExperimentPlan;
 use crate::stats::Moments;
 use crate::stats::readout::{ArmRow, StatsTable};
@@ -26,40 +30,44 @@ pub enum Cell {
 /// A result row, column name -> cell.
 pub type NamedRow = BTreeMap<String, Cell>;
 
-/// A failure while running SQL or reading its result.
-#[derive(Debug)]
-pub struct ExecuteError(pub String);
-
-impl std::fmt::Display for ExecuteError {
-    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        f.write_str(&self.0)
-    }
+/// Where a statement runs: it speaks one dialect and returns rows by column name.
+///
+/// Implementations: [`duckdb::LocalEngine`] (the workspace's local data) and
+/// [`postgres::PostgresEngine`]. Errors are [`crate::ErrorKind::Engine`] (the engine failed)
+/// or [`crate::ErrorKind::Data`] (the data it read does not fit).
+pub trait Engine {
+    /// Who computes the numbers, for messages: `local DuckDB`, `PostgreSQL`.
+    fn describe(&self) -> String;
+    /// The dialect whose SQL this engine runs.
+    fn dialect(&self) -> &str;
+    /// Runs one statement and returns its rows by column name.
+    fn query(&mut self, sql: &str) -> Result<Vec<NamedRow>>;
 }
 
-fn number(row: &NamedRow, col: &str) -> Result<Option<f64>, ExecuteError> {
+fn number(row: &NamedRow, col: &str) -> Result<Option<f64>> {
     match row.get(col) {
-        None => Err(ExecuteError(format!("the result has no column `{col}`"))),
+        None => Err(Error::data(format!("the result has no column `{col}`"))),
         Some(Cell::Null) => Ok(None),
         Some(Cell::Number(x)) => Ok(Some(*x)),
         Some(Cell::Text(t)) => t
             .trim()
             .parse::<f64>()
             .map(Some)
-            .map_err(|_| ExecuteError(format!("column `{col}` holds `{t}`, not a number"))),
+            .map_err(|_| Error::data(format!("column `{col}` holds `{t}`, not a number"))),
     }
 }
 
-fn count(row: &NamedRow, col: &str) -> Result<u64, ExecuteError> {
+fn count(row: &NamedRow, col: &str) -> Result<u64> {
     let x = number(row, col)?.unwrap_or(0.0);
     if x < 0.0 || x.fract() != 0.0 || !x.is_finite() {
-        return Err(ExecuteError(format!("column `{col}` holds {x}, not a count")));
+        return Err(Error::data(format!("column `{col}` holds {x}, not a count")));
     }
     Ok(x as u64)
 }
 
 /// Reads the readout query's rows into a [`StatsTable`]. Column names are matched without
 /// regard to case (engines that fold unquoted names return them in upper case).
-pub fn stats_table(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<StatsTable, ExecuteError> {
+pub fn stats_table(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<StatsTable> {
     let mut table = StatsTable::default();
     for (i, row) in rows.iter().enumerate() {
         let row: NamedRow = row
@@ -67,38 +75,38 @@ pub fn stats_table(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<StatsTabl
             .map(|(k, v)| (k.to_ascii_lowercase(), v.clone()))
             .collect();
         let row = &row;
-        let text = |col: &str| -> Result<Option<String>, ExecuteError> {
+        let text = |col: &str| -> Result<Option<String>> {
             match row.get(col) {
                 Some(Cell::Text(t)) => Ok(Some(t.clone())),
                 Some(Cell::Number(x)) => Ok(Some(x.to_string())),
                 Some(Cell::Null) => Ok(None),
-                None => Err(ExecuteError(format!("the result has no column `{col}`"))),
+                None => Err(Error::data(format!("the result has no column `{col}`"))),
             }
         };
-        let Some(arm) = text("arm")? else {
-            return Err(ExecuteError(format!("row {} of the result has no arm", i + 1)));
+        let Some(arm) = text(columns::ARM)? else {
+            return Err(Error::data(format!("row {} of the result has no arm", i + 1)));
         };
         if i == 0 {
-            table.excluded_multiple_arms = count(row, "excluded_multiple_arms")?;
-            table.excluded_missing_arm = count(row, "excluded_missing_arm")?;
-            table.excluded_rows_without_unit = count(row, "excluded_rows_without_unit")?;
+            table.excluded_multiple_arms = count(row, columns::EXCLUDED_MULTIPLE_ARMS)?;
+            table.excluded_missing_arm = count(row, columns::EXCLUDED_MISSING_ARM)?;
+            table.excluded_rows_without_unit = count(row, columns::EXCLUDED_ROWS_WITHOUT_UNIT)?;
         }
         let segment = if plan.segments.is_empty() {
             None
         } else {
-            text("segment_name")?
-                .map(|name| -> Result<_, ExecuteError> { Ok((name, text("segment_value")?)) })
+            text(columns::SEGMENT_NAME)?
+                .map(|name| -> Result<_> { Ok((name, text(columns::SEGMENT_VALUE)?)) })
         };
         let mut out = ArmRow {
             arm,
             segment: segment.transpose()?,
-            units: count(row, "units")?,
+            units: count(row, columns::UNITS)?,
             ..ArmRow::default()
         };
         for c in &plan.columns {
-            let n = count(row, &format!("{}__n", c.column))?;
-            let mean = number(row, &format!("{}__mean", c.column))?.unwrap_or(f64::NAN);
-            let var = number(row, &format!("{}__var", c.column))?.unwrap_or(f64::NAN);
+            let n = count(row, &columns::stat(&c.column, Stat::N))?;
+            let mean = number(row, &columns::stat(&c.column, Stat::Mean))?.unwrap_or(f64::NAN);
+            let var = number(row, &columns::stat(&c.column, Stat::Var))?.unwrap_or(f64::NAN);
             out.columns.insert(c.column.clone(), Moments { n, mean, var });
         }
         for c in &plan.covariances {
@@ -112,24 +120,24 @@ pub fn stats_table(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<StatsTabl
 
 /// Reads a statistics table exported from a warehouse: CSV with a header row, or JSON (an array
 /// of objects, or one object per line). Parquet is not read by this build: export CSV or JSON.
-pub fn read_stats_file(path: &std::path::Path) -> Result<Vec<NamedRow>, ExecuteError> {
+pub fn read_stats_file(path: &std::path::Path) -> Result<Vec<NamedRow>> {
     let ext = path
         .extension()
         .and_then(|e| e.to_str())
         .unwrap_or("")
         .to_ascii_lowercase();
     let text = std::fs::read_to_string(path)
-        .map_err(|e| ExecuteError(format!("cannot read {}: {e}", path.display())))?;
+        .map_err(|e| Error::data(format!("cannot read {}: {e}", path.display())).with_source(e))?;
     match ext.as_str() {
-        "csv" => parse_csv(&text).map_err(|e| ExecuteError(format!("{}: {e}", path.display()))),
+        "csv" => parse_csv(&text).map_err(|e| Error::data(format!("{}: {e}", path.display()))),
         "json" | "jsonl" | "ndjson" => {
-            parse_json(&text).map_err(|e| ExecuteError(format!("{}: {e}", path.display())))
+            parse_json(&text).map_err(|e| Error::data(format!("{}: {e}", path.display())))
         }
-        "parquet" => Err(ExecuteError(format!(
+        "parquet" => Err(Error::data(format!(
             "{}: Parquet statistics files are not supported by this build; export the result as CSV or JSON",
             path.display()
         ))),
-        _ => Err(ExecuteError(format!(
+        _ => Err(Error::data(format!(
             "{}: unknown file type; export the statistics table as .csv or .json",
             path.display()
         ))),
@@ -253,39 +261,38 @@ fn parse_json(text: &str) -> Result<Vec<NamedRow>, String> {
 }
 
 /// Checks that a statistics table comes from this plan: same fingerprint, same layout.
-pub fn check_fingerprint(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<(), ExecuteError> {
+pub fn check_fingerprint(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<()> {
     let want = crate::plan::fingerprint(plan);
     if rows.is_empty() {
-        return Err(ExecuteError("the statistics table has no rows".into()));
+        return Err(Error::data("the statistics table has no rows"));
     }
     for row in rows {
         let row: NamedRow = row
             .iter()
             .map(|(k, v)| (k.to_ascii_lowercase(), v.clone()))
             .collect();
-        match row.get("plumb_layout") {
+        match row.get(columns::LAYOUT) {
             Some(Cell::Number(x)) if *x == f64::from(crate::plan::STATS_LAYOUT) => {}
             Some(Cell::Text(t)) if t.trim() == crate::plan::STATS_LAYOUT.to_string() => {}
             None => {
-                return Err(ExecuteError(
-                    "the statistics table has no plumb_layout column: it was not produced by `plumb sql`"
-                        .into(),
+                return Err(Error::data(
+                    "the statistics table has no plumb_layout column: it was not produced by `plumb sql`",
                 ));
             }
             Some(other) => {
-                return Err(ExecuteError(format!(
+                return Err(Error::data(format!(
                     "the statistics table has layout {other:?}, this plumb reads layout {}; re-run the query from `plumb sql`",
                     crate::plan::STATS_LAYOUT
                 )));
             }
         }
-        let got = match row.get("plumb_fingerprint") {
+        let got = match row.get(columns::FINGERPRINT) {
             Some(Cell::Text(t)) => t.clone(),
             Some(Cell::Number(x)) => x.to_string(),
             _ => String::new(),
         };
         if got != want {
-            return Err(ExecuteError(format!(
+            return Err(Error::data(format!(
                 "the statistics table comes from another query (fingerprint `{got}`, expected `{want}`): another experiment or another version of the catalog. Re-run the SQL that `plumb sql {}` prints now",
                 plan.experiment
             )));

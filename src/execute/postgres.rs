@@ -5,32 +5,43 @@
 //! Connection settings are assembled by the command line (URL, libpq environment variables,
 //! password file); they are never printed: errors name the user and database only.
 
-use super::{Cell, ExecuteError, NamedRow};
+use super::{Cell, NamedRow};
+use crate::error::{Error, Result};
 use postgres::{Client, Config, NoTls, SimpleQueryMessage};
 
 /// An open connection.
-pub struct Server {
+pub struct PostgresEngine {
     client: Client,
 }
 
-impl Server {
-    pub fn connect(config: &Config) -> Result<Server, ExecuteError> {
+impl PostgresEngine {
+    pub fn connect(config: &Config) -> Result<PostgresEngine> {
         let client = config.connect(NoTls).map_err(|e| {
-            ExecuteError(format!(
+            Error::engine(format!(
                 "cannot connect to PostgreSQL as user {} to database {}: {e}",
                 config.get_user().unwrap_or("(default)"),
                 config.get_dbname().unwrap_or("(default)")
             ))
         })?;
-        Ok(Server { client })
+        Ok(PostgresEngine { client })
+    }
+}
+
+impl super::Engine for PostgresEngine {
+    fn describe(&self) -> String {
+        "PostgreSQL".into()
+    }
+
+    fn dialect(&self) -> &str {
+        "postgres"
     }
 
     /// Runs one statement and returns its rows by (lowercased) column name.
-    pub fn query(&mut self, sql: &str) -> Result<Vec<NamedRow>, ExecuteError> {
+    fn query(&mut self, sql: &str) -> Result<Vec<NamedRow>> {
         let messages = self
             .client
             .simple_query(sql)
-            .map_err(|e| ExecuteError(format!("PostgreSQL: {e}")))?;
+            .map_err(|e| Error::engine(format!("PostgreSQL: {e}")))?;
         let mut out = Vec::new();
         for m in messages {
             if let SimpleQueryMessage::Row(row) = m {

@@ -3,7 +3,10 @@
 //! Formatting only: every number shown was computed by `stats`. The JSON form serialises the
 //! readout struct as is, so its keys are those documented in README.md.
 
-use crate::stats::readout::{Readout, ResultRow};
+use crate::ir::Role;
+use crate::stats::readout::{Readout, ResultRow, Verdict};
+
+pub mod power;
 use comfy_table::{Cell, CellAlignment, ContentArrangement, Table, presets};
 
 /// A number with about `digits` significant digits, without exponent for ordinary sizes.
@@ -54,12 +57,12 @@ fn row_cells(r: &ResultRow) -> Vec<Cell> {
         .map(|d| format!("{} [{}, {}]", pct(d.estimate), pct(d.ci_low), pct(d.ci_high)))
         .unwrap_or_else(|| "-".into());
     let change = match r.verdict {
-        "better" | "worse" => format!("{} ({})", r.change, r.verdict),
+        Verdict::Better | Verdict::Worse => format!("{} ({})", r.change, r.verdict),
         _ => r.change.to_string(),
     };
     vec![
         Cell::new(&r.metric),
-        Cell::new(r.role),
+        Cell::new(r.role.as_str()),
         Cell::new(&r.arm),
         Cell::new(format!("{} / {}", r.control.n, r.treatment.n)).set_alignment(CellAlignment::Right),
         Cell::new(mean(r.control.mean)).set_alignment(CellAlignment::Right),
@@ -153,7 +156,7 @@ pub fn readout_text(r: &Readout) -> String {
     let segment_rows: Vec<&ResultRow> = r
         .results
         .iter()
-        .filter(|x| x.segment.is_some() && x.role == "primary")
+        .filter(|x| x.segment.is_some() && x.role == Role::Primary)
         .collect();
     if !segment_rows.is_empty() {
         out.push_str("\nSegments (drill-down of primary metrics; every metric is in --format json):\n");

@@ -8,6 +8,7 @@
 //! qualified here with the alias of the table they belong to, so no join can make them
 //! ambiguous.
 
+use crate::columns;
 use crate::ir::{self, Aggregation, Cap, Catalog, MetricKind, Role, SegmentKind, Source};
 use crate::time::Timestamp;
 use sqlparser::ast::{Expr, Ident, visit_expressions_mut};
@@ -44,8 +45,13 @@ pub struct ExposureScan {
     pub time: String,
     pub experiment_column: String,
     pub arm_column: String,
-    pub key: String,
+    /// Only the rows of this experiment (`experiment_column = key`). `None` reads every row of
+    /// the log as one arm, [`HISTORY_ARM`] (the history of `plan_history`).
+    pub key: Option<String>,
 }
+
+/// The one arm of a history plan: every unit exposed to anything in the window.
+pub const HISTORY_ARM: &str = "all";
 
 /// One pass over one event table.
 #[derive(Debug, Clone)]
@@ -93,16 +99,6 @@ pub struct Covariance {
     pub b: String,
 }
 
-/// Name of the covariance column of two per-unit columns.
-pub fn covariance_name(a: &str, b: &str) -> String {
-    format!("{a}__cov__{b}")
-}
-
-/// Name of the pre-exposure covariate column of a per-unit column.
-pub fn covariate_name(column: &str) -> String {
-    format!("{column}__pre")
-}
-
 #[derive(Debug, Clone)]
 pub struct PlannedSegment {
     pub name: String,
@@ -126,6 +122,7 @@ pub enum PlannedSegmentKind {
 
 #[derive(Debug, Clone)]
 pub struct PlannedMetric {
+    pub id: ir::MetricId,
     pub name: String,
     pub role: Role,
     pub kind: PlannedKind,
@@ -161,9 +158,58 @@ pub fn plan_experiment(
     extra_segments: &[ir::SegmentId],
 ) -> ExperimentPlan {
     let exp = &catalog.experiments[experiment];
+    plan_for(catalog, exp, exposure_scan(catalog, experiment), extra_segments)
+}
+
+/// Plans the history query of `plumb power`: the same readout query over a past window, as a
+/// one-arm pseudo-experiment of every unit of exposure log `log` first exposed (to anything)
+/// in `[start, end)`, with `metric` measured from each unit's first exposure. Variance and
+/// traffic for planning thus come from the very SQL a readout runs.
+pub fn plan_history(
+    catalog: &Catalog,
+    metric: ir::MetricId,
+    log: ir::ExposureLogId,
+    start: Timestamp,
+    end: Timestamp,
+) -> ExperimentPlan {
+    let l = &catalog.exposure_logs[log];
+    let exposures = ExposureScan {
+        source: l.source.clone(),
+        id: l.id.clone(),
+        time: l.time.clone(),
+        experiment_column: l.experiment.clone(),
+        arm_column: l.arm.clone(),
+        key: None,
+    };
+    let history = ir::Experiment {
+        name: "history".into(),
+        description: None,
+        exposures: log,
+        key: String::new(),
+        control: HISTORY_ARM.into(),
+        arms: vec![ir::Arm {
+            name: HISTORY_ARM.into(),
+            share: 1.0,
+        }],
+        start,
+        end,
+        metrics: vec![(metric, Role::Primary)],
+        covariate_window: 0,
+        segments: vec![],
+        mde: None,
+    };
+    plan_for(catalog, &history, exposures, &[])
+}
+
+fn plan_for(
+    catalog: &Catalog,
+    exp: &ir::Experiment,
+    exposures: ExposureScan,
+    extra_segments: &[ir::SegmentId],
+) -> ExperimentPlan {
     let mut plan = ExperimentPlan {
         experiment: exp.name.clone(),
-        exposures: exposure_scan(catalog, experiment),
+        exposures,
         start: exp.start,
         end: exp.end,
         scans: Vec::new(),
@@ -215,6 +261,7 @@ pub fn plan_experiment(
             }
         };
         plan.metrics.push(PlannedMetric {
+            id,
             name: metric.name.clone(),
             role,
             kind,
@@ -243,7 +290,7 @@ fn exposure_scan(catalog: &Catalog, experiment: ir::ExperimentId) -> ExposureSca
         time: log.time.clone(),
         experiment_column: log.experiment.clone(),
         arm_column: log.arm.clone(),
-        key: exp.key.clone(),
+        key: Some(exp.key.clone()),
     }
 }
 
@@ -269,13 +316,13 @@ fn planned_segment(catalog: &Catalog, id: ir::SegmentId) -> PlannedSegment {
     };
     PlannedSegment {
         name: s.name.clone(),
-        column: format!("segment__{}", s.name),
+        column: columns::segment(&s.name),
         kind,
     }
 }
 
 fn add_covariance(plan: &mut ExperimentPlan, a: &str, b: &str) {
-    let name = covariance_name(a, b);
+    let name = columns::covariance(a, b);
     if !plan.covariances.iter().any(|c| c.name == name) {
         plan.covariances.push(Covariance {
             name,
@@ -289,15 +336,15 @@ fn add_covariance(plan: &mut ExperimentPlan, a: &str, b: &str) {
 fn add_column(catalog: &Catalog, plan: &mut ExperimentPlan, metric: ir::MetricId) -> String {
     let m = &catalog.metrics[metric];
     if let MetricKind::Events { window, cap, .. } = &m.kind {
-        push_aggregate(catalog, plan, metric, m.name.clone(), *window, *cap);
+        push_aggregate(catalog, plan, metric, columns::metric(&m.name), *window, *cap);
     }
-    m.name.clone()
+    columns::metric(&m.name)
 }
 
 /// Adds the pre-exposure covariate `[-covariate_window, 0)` of an event metric.
 fn add_covariate(catalog: &Catalog, plan: &mut ExperimentPlan, metric: ir::MetricId) -> String {
     let m = &catalog.metrics[metric];
-    let name = covariate_name(&m.name);
+    let name = columns::covariate(&columns::metric(&m.name));
     if let MetricKind::Events { cap, .. } = &m.kind {
         let window = ir::Window {
             start: -plan.covariate_window,
@@ -334,7 +381,7 @@ fn push_aggregate(
         Some(i) => i,
         None => {
             plan.scans.push(EventScan {
-                name: format!("scan_{}", t.name),
+                name: columns::scan(&t.name),
                 table: t.name.clone(),
                 source: t.source.clone(),
                 id: t.id.clone(),
@@ -373,29 +420,65 @@ fn source_text(source: &Source) -> String {
     }
 }
 
-/// A fingerprint of the compiled query, independent of the dialect: `fp` and 16 hex digits of FNV-1a
-/// (64 bit) over a canonical text of the plan. Another experiment, another catalog version or
-/// another plumb layout gives another fingerprint, so a statistics table exported from a
-/// warehouse can be matched to the query that produced it.
-pub fn fingerprint(plan: &ExperimentPlan) -> String {
-    let mut text = format!(
-        "layout {STATS_LAYOUT}\nexperiment {}\nexposures {} {} {} {} {} {}\nperiod {} {} {}\n",
-        plan.experiment,
-        source_text(&plan.exposures.source),
-        plan.exposures.id,
-        plan.exposures.time,
-        plan.exposures.experiment_column,
-        plan.exposures.arm_column,
-        plan.exposures.key,
-        plan.start.0,
-        plan.end.0,
-        plan.covariate_window
-    );
+fn aggregation_text(a: Aggregation) -> String {
+    match a {
+        Aggregation::Count => "count".into(),
+        Aggregation::Sum => "sum".into(),
+        Aggregation::Distinct => "distinct".into(),
+        Aggregation::Any => "any".into(),
+        Aggregation::Min => "min".into(),
+        Aggregation::Max => "max".into(),
+        Aggregation::AtLeast(n) => format!("at_least({n})"),
+    }
+}
+
+fn kind_text(kind: &PlannedKind) -> String {
+    match kind {
+        PlannedKind::Mean { column } => format!("mean({column})"),
+        PlannedKind::Ratio {
+            numerator,
+            denominator,
+        } => format!("ratio({numerator}, {denominator})"),
+    }
+}
+
+/// The canonical text of what a readout query computes, from which [`fingerprint`] is hashed.
+///
+/// One line per fact, in plan order, with every value written explicitly (never a `Debug`
+/// form of an internal struct, so renaming a Rust field cannot change a fingerprint). SQL
+/// fragments appear as sqlparser prints them in its generic form, times as seconds since the
+/// epoch, windows and offsets as seconds. Its format is part of the statistics-table contract
+/// (README, "Statistics table"): change it only together with [`STATS_LAYOUT`] or with a note
+/// that exported tables must be recomputed. Dialects do not enter it.
+pub fn canonical_text(plan: &ExperimentPlan) -> String {
+    use std::fmt::Write as _;
     let expr = |e: &Option<Expr>| e.as_ref().map(|e| e.to_string()).unwrap_or_default();
+    let x = &plan.exposures;
+    let mut text = String::new();
+    let _ = writeln!(text, "plumb readout query, layout {STATS_LAYOUT}");
+    let _ = writeln!(text, "experiment {}", plan.experiment);
+    let _ = writeln!(
+        text,
+        "exposures source={} id={} time={} experiment={} arm={} key={}",
+        source_text(&x.source),
+        x.id,
+        x.time,
+        x.experiment_column,
+        x.arm_column,
+        x.key
+            .as_deref()
+            .map_or_else(|| format!("(every row, arm {HISTORY_ARM})"), str::to_string)
+    );
+    let _ = writeln!(
+        text,
+        "period start={} end={} covariate_window={}",
+        plan.start.0, plan.end.0, plan.covariate_window
+    );
     for s in &plan.scans {
-        text += &format!(
-            "scan {} {} {} {} {} {}\n",
-            s.name,
+        let _ = writeln!(
+            text,
+            "scan {} source={} id={} time={} where={} earliest_offset={}",
+            s.table,
             source_text(&s.source),
             s.id,
             s.time,
@@ -403,35 +486,72 @@ pub fn fingerprint(plan: &ExperimentPlan) -> String {
             s.earliest_offset
         );
         for a in &s.aggregates {
-            text += &format!(
-                "  {} {:?} {} {} {:?}\n",
+            let _ = writeln!(
+                text,
+                "  aggregate {} {} value={} where={} window=[{}, {})",
                 a.column,
-                a.aggregation,
+                aggregation_text(a.aggregation),
                 expr(&a.value),
                 expr(&a.filter),
-                a.window
+                a.window.start,
+                a.window.end.map_or_else(|| "end".to_string(), |e| e.to_string())
             );
         }
     }
-    text += &format!("{:?}\n{:?}\n{:?}\n", plan.columns, plan.covariances, plan.metrics);
+    for c in &plan.columns {
+        let cap = match c.cap {
+            None => "none".to_string(),
+            Some(Cap::Percentile(p)) => format!("percentile {p}"),
+            Some(Cap::Absolute(v)) => format!("absolute {v}"),
+        };
+        let _ = writeln!(
+            text,
+            "column {} scan={} zero_fill={} cap={cap}",
+            c.column, plan.scans[c.scan].table, c.zero_fill
+        );
+    }
+    for c in &plan.covariances {
+        let _ = writeln!(text, "covariance {} of {} and {}", c.name, c.a, c.b);
+    }
+    for m in &plan.metrics {
+        let _ = writeln!(
+            text,
+            "metric {} role={} {} covariate={}",
+            m.name,
+            m.role.as_str(),
+            kind_text(&m.kind),
+            m.covariate.as_ref().map_or_else(|| "none".to_string(), kind_text)
+        );
+    }
     for seg in &plan.segments {
-        text += &match &seg.kind {
-            PlannedSegmentKind::Exposure { column } => format!("segment {} exposure {column}\n", seg.name),
+        let _ = match &seg.kind {
+            PlannedSegmentKind::Exposure { column } => {
+                writeln!(text, "segment {} from_exposure={column}", seg.name)
+            }
             PlannedSegmentKind::Attribute {
                 source,
                 id,
                 value,
                 time,
-            } => format!(
-                "segment {} attribute {} {id} {value} {:?}\n",
+            } => writeln!(
+                text,
+                "segment {} source={} id={id} value={value} time={}",
                 seg.name,
                 source_text(source),
-                time
+                time.as_deref().unwrap_or("")
             ),
         };
     }
+    text
+}
+
+/// A fingerprint of the compiled query, independent of the dialect: `fp` and 16 hex digits of
+/// FNV-1a (64 bit) over [`canonical_text`]. Another experiment, another catalog version or
+/// another plumb layout gives another fingerprint, so a statistics table exported from a
+/// warehouse can be matched to the query that produced it.
+pub fn fingerprint(plan: &ExperimentPlan) -> String {
     let mut hash: u64 = 0xcbf2_9ce4_8422_2325;
-    for b in text.bytes() {
+    for b in canonical_text(plan).bytes() {
         hash ^= u64::from(b);
         hash = hash.wrapping_mul(0x0000_0100_0000_01b3);
     }
@@ -521,7 +641,7 @@ pub fn plan_report(
                 (
                     ReportMetricKind::Value {
                         scan,
-                        column: m.name.clone(),
+                        column: columns::metric(&m.name),
                     },
                     *table,
                 )
@@ -538,8 +658,8 @@ pub fn plan_report(
                 };
                 (
                     ReportMetricKind::Ratio {
-                        numerator: (ns, catalog.metrics[*numerator].name.clone()),
-                        denominator: (ds, catalog.metrics[*denominator].name.clone()),
+                        numerator: (ns, columns::metric(&catalog.metrics[*numerator].name)),
+                        denominator: (ds, columns::metric(&catalog.metrics[*denominator].name)),
                     },
                     table,
                 )
@@ -566,7 +686,7 @@ fn report_scan(catalog: &Catalog, plan: &mut ReportPlan, table: ir::EventTableId
         return i;
     }
     plan.scans.push(EventScan {
-        name: format!("scan_{}", t.name),
+        name: columns::scan(&t.name),
         table: t.name.clone(),
         source: t.source.clone(),
         id: t.id.clone(),
@@ -593,9 +713,10 @@ fn report_column(catalog: &Catalog, plan: &mut ReportPlan, metric: ir::MetricId)
         return 0;
     };
     let scan = report_scan(catalog, plan, *table);
-    if !plan.scans[scan].aggregates.iter().any(|a| a.column == m.name) {
+    let column = columns::metric(&m.name);
+    if !plan.scans[scan].aggregates.iter().any(|a| a.column == column) {
         plan.scans[scan].aggregates.push(Aggregate {
-            column: m.name.clone(),
+            column,
             aggregation: *aggregation,
             value: value.as_deref().map(|v| qualify(v, EVENT_ALIAS)),
             filter: filter.as_deref().map(|f| qualify(f, EVENT_ALIAS)),

@@ -11,6 +11,8 @@
 //! or a bug in plumb. Every identifier and literal that comes from users goes through
 //! [`Dialect::ident`] / [`Dialect::literal`]; templates never quote by hand.
 
+use crate::columns;
+use crate::error::{Error, Result};
 use crate::ir::{Aggregation, Cap, Source};
 use crate::plan::{Aggregate, EventScan, ExperimentPlan, PlannedSegmentKind, ReportMetricKind, ReportPlan};
 use crate::time::Timestamp;
@@ -144,38 +146,31 @@ struct CapabilitiesOverride {
     date_trunc: Option<String>,
 }
 
-/// A problem with a dialect's files (not with the catalog).
-#[derive(Debug)]
-pub struct DialectError(pub String);
-
-impl std::fmt::Display for DialectError {
-    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        f.write_str(&self.0)
-    }
-}
-
 /// A loaded dialect: capabilities and the templates, overrides applied.
 #[derive(Debug, Clone)]
 pub struct Dialect {
     pub caps: Capabilities,
+    /// Some file came from a user's `--dialects-dir` (so a broken template is theirs, not a bug).
+    pub from_user_dir: bool,
     templates: BTreeMap<String, String>,
     /// The capability snippets, compiled once.
     snippets: Environment<'static>,
 }
 
-fn read_file(user_dir: Option<&Path>, dialect: &str, file: &str) -> Result<Option<String>, DialectError> {
+/// A dialect file's text, and whether it came from the user's folder.
+fn read_file(user_dir: Option<&Path>, dialect: &str, file: &str) -> Result<Option<(String, bool)>> {
     if let Some(dir) = user_dir {
         let path: PathBuf = dir.join(dialect).join(file);
         if path.is_file() {
             return std::fs::read_to_string(&path)
-                .map(Some)
-                .map_err(|e| DialectError(format!("cannot read {}: {e}", path.display())));
+                .map(|t| Some((t, true)))
+                .map_err(|e| Error::dialect(format!("cannot read {}: {e}", path.display())).with_source(e));
         }
     }
     Ok(BUILTIN
         .iter()
         .find(|(d, f, _)| *d == dialect && *f == file)
-        .map(|(_, _, t)| t.to_string()))
+        .map(|(_, _, t)| (t.to_string(), false)))
 }
 
 fn dialect_exists(user_dir: Option<&Path>, name: &str) -> bool {
@@ -184,22 +179,23 @@ fn dialect_exists(user_dir: Option<&Path>, name: &str) -> bool {
 
 impl Dialect {
     /// Loads dialect `name`, looking in `user_dir` first, then the built-in folders.
-    pub fn load(name: &str, user_dir: Option<&Path>) -> Result<Dialect, DialectError> {
+    pub fn load(name: &str, user_dir: Option<&Path>) -> Result<Dialect> {
         if !dialect_exists(user_dir, name) {
-            return Err(DialectError(format!(
+            return Err(Error::usage(format!(
                 "unknown dialect `{name}`; built in: {}",
                 builtin_dialects().join(", ")
             )));
         }
-        let base_text = read_file(user_dir, "generic", "dialect.yaml")?
-            .ok_or_else(|| DialectError("generic/dialect.yaml is missing".into()))?;
+        let (base_text, mut from_user_dir) = read_file(user_dir, "generic", "dialect.yaml")?
+            .ok_or_else(|| Error::bug("generic/dialect.yaml is missing"))?;
         let mut caps: Capabilities = serde_yaml::from_str(&base_text)
-            .map_err(|e| DialectError(format!("generic/dialect.yaml: {e}")))?;
+            .map_err(|e| Error::dialect(format!("generic/dialect.yaml: {e}")))?;
         if name != "generic"
-            && let Some(text) = read_file(user_dir, name, "dialect.yaml")?
+            && let Some((text, user)) = read_file(user_dir, name, "dialect.yaml")?
         {
-            let o: CapabilitiesOverride =
-                serde_yaml::from_str(&text).map_err(|e| DialectError(format!("{name}/dialect.yaml: {e}")))?;
+            from_user_dir |= user;
+            let o: CapabilitiesOverride = serde_yaml::from_str(&text)
+                .map_err(|e| Error::dialect(format!("{name}/dialect.yaml: {e}")))?;
             macro_rules! apply {
                 ($($f:ident),*) => { $(if let Some(v) = o.$f { caps.$f = v; })* };
             }
@@ -223,11 +219,12 @@ impl Dialect {
         caps.name = name.to_string();
         let mut templates = BTreeMap::new();
         for file in TEMPLATES {
-            let text = match read_file(user_dir, name, file)? {
+            let (text, user) = match read_file(user_dir, name, file)? {
                 Some(t) => t,
                 None => read_file(user_dir, "generic", file)?
-                    .ok_or_else(|| DialectError(format!("generic/{file} is missing")))?,
+                    .ok_or_else(|| Error::bug(format!("generic/{file} is missing")))?,
             };
+            from_user_dir |= user;
             templates.insert(file.to_string(), text);
         }
         let mut snippets = Environment::new();
@@ -241,10 +238,11 @@ impl Dialect {
         ] {
             snippets
                 .add_template_owned(key, text.clone())
-                .map_err(|e| DialectError(format!("dialect {name}: capability `{key}`: {e}")))?;
+                .map_err(|e| Error::dialect(format!("dialect {name}: capability `{key}`: {e}")))?;
         }
         Ok(Dialect {
             caps,
+            from_user_dir,
             templates,
             snippets,
         })
@@ -309,19 +307,28 @@ impl Dialect {
     }
 
     /// Renders the capability snippet `key` (compiled once, in [`Dialect::load`]).
-    fn snippet(&self, key: &str, ctx: minijinja::Value) -> Result<String, DialectError> {
+    fn snippet(&self, key: &str, ctx: minijinja::Value) -> Result<String> {
         self.snippets
             .get_template(key)
             .and_then(|t| t.render(ctx))
-            .map_err(|e| DialectError(format!("dialect {}: capability `{key}`: {e}", self.caps.name)))
+            .map_err(|e| self.broken(format!("dialect {}: capability `{key}`: {e}", self.caps.name)))
     }
 
-    pub fn timestamp(&self, ts: Timestamp) -> Result<String, DialectError> {
+    /// A failure of this dialect's files: the user's, or a bug when they are all built in.
+    pub fn broken(&self, message: String) -> Error {
+        if self.from_user_dir {
+            Error::dialect(message)
+        } else {
+            Error::bug(message)
+        }
+    }
+
+    pub fn timestamp(&self, ts: Timestamp) -> Result<String> {
         self.snippet("timestamp_literal", context! { ts => ts.to_sql_string() })
     }
 
     /// `expr` plus `seconds` (possibly negative), in the largest whole unit.
-    pub fn add_seconds(&self, expr: &str, seconds: i64) -> Result<String, DialectError> {
+    pub fn add_seconds(&self, expr: &str, seconds: i64) -> Result<String> {
         if seconds == 0 {
             return Ok(expr.to_string());
         }
@@ -335,12 +342,12 @@ impl Dialect {
         self.snippet("add_interval", context! { expr => expr, n => n, unit => unit })
     }
 
-    fn covar_samp(&self, a: &str, b: &str) -> Result<String, DialectError> {
+    fn covar_samp(&self, a: &str, b: &str) -> Result<String> {
         let cast = |x: &str| format!("CAST({x} AS {})", self.caps.float_type);
         self.snippet("covar_samp", context! { a => cast(a), b => cast(b) })
     }
 
-    fn percentile(&self, expr: &str, p: f64) -> Result<String, DialectError> {
+    fn percentile(&self, expr: &str, p: f64) -> Result<String> {
         self.snippet("percentile", context! { expr => expr, p => p })
     }
 
@@ -374,12 +381,7 @@ impl Dialect {
 
     /// The aggregate of `agg` in `scan`; `windowed`: only events inside the window relative to
     /// the unit's first exposure count (readouts, and reports restricted to an experiment).
-    fn scan_aggregate(
-        &self,
-        scan: &EventScan,
-        agg: &Aggregate,
-        windowed: bool,
-    ) -> Result<String, DialectError> {
+    fn scan_aggregate(&self, scan: &EventScan, agg: &Aggregate, windowed: bool) -> Result<String> {
         let t = format!("e.{}", self.ident(&scan.time));
         let mut conds = Vec::new();
         if windowed {
@@ -403,11 +405,11 @@ impl Dialect {
     }
 
     /// Renders the readout query of one experiment.
-    pub fn render_experiment(&self, plan: &ExperimentPlan) -> Result<String, DialectError> {
+    pub fn render_experiment(&self, plan: &ExperimentPlan) -> Result<String> {
         if !plan.segments.is_empty() && !self.caps.grouping_sets {
-            return Err(DialectError(format!(
-                "dialect {} has no GROUPING SETS, so segments cannot be computed in one statement; \
-                 run without segments or use a dialect with `grouping_sets: true`",
+            // `compile_experiment` checks this first, with a located message.
+            return Err(Error::bug(format!(
+                "dialect {} has no GROUPING SETS but segments were planned",
                 self.caps.name
             )));
         }
@@ -447,7 +449,7 @@ impl Dialect {
                     format!("CASE WHEN r.{col} > {v} THEN {v} ELSE r.{col} END")
                 }
                 Some(Cap::Percentile(p)) => {
-                    let name = self.ident(&format!("{}__cap", c.column));
+                    let name = self.ident(&columns::cap(&c.column));
                     caps.push(context! {
                         name => name,
                         sql => self.percentile(&format!("CAST({col} AS {})", self.caps.float_type), p)?,
@@ -459,9 +461,9 @@ impl Dialect {
                 column => col,
                 sql => sql,
                 capped => capped,
-                n => self.ident(&format!("{}__n", c.column)),
-                mean => self.ident(&format!("{}__mean", c.column)),
-                var => self.ident(&format!("{}__var", c.column)),
+                n => self.ident(&columns::stat(&c.column, columns::Stat::N)),
+                mean => self.ident(&columns::stat(&c.column, columns::Stat::Mean)),
+                var => self.ident(&columns::stat(&c.column, columns::Stat::Var)),
             });
         }
         let mut covariances = Vec::new();
@@ -490,7 +492,7 @@ impl Dialect {
                     value,
                     time,
                 } => {
-                    let cte = format!("segment_{}", seg.name);
+                    let cte = columns::segment_cte(&seg.name);
                     attribute_segments.push(self.segment_context(&cte, source, id, value, time.as_ref()));
                     format!("{cte}.segment_value")
                 }
@@ -526,7 +528,7 @@ impl Dialect {
     /// Renders a report query (long format: metric, part, period_start, segment_value, units,
     /// total). Parts: `value`, `numerator`, `denominator`, and `active` (units active in the
     /// period, whose `total` counts their event rows).
-    pub fn render_report(&self, plan: &ReportPlan) -> Result<String, DialectError> {
+    pub fn render_report(&self, plan: &ReportPlan) -> Result<String> {
         let windowed = plan.exposed.is_some();
         let mut scans = Vec::new();
         for scan in &plan.scans {
@@ -581,7 +583,7 @@ impl Dialect {
                     format!("x.{column}")
                 }
                 PlannedSegmentKind::Attribute { source, id, value, time } => {
-                    let cte = format!("segment_{}", seg.name);
+                    let cte = columns::segment_cte(&seg.name);
                     // Without exposures there is no "as of exposure": the smallest value is used.
                     let time = if windowed { time.as_ref() } else { None };
                     attribute_segments.push(self.segment_context(&cte, source, id, value, time));
@@ -622,9 +624,13 @@ impl Dialect {
             source => self.source(&x.source),
             id => self.ident(&x.id),
             time => self.ident(&x.time),
-            arm => self.ident(&x.arm_column),
+            // A history plan reads every row of the log as one arm.
+            arm => match &x.key {
+                Some(_) => self.ident(&x.arm_column),
+                None => self.literal(crate::plan::HISTORY_ARM),
+            },
             experiment => self.ident(&x.experiment_column),
-            key => self.literal(&x.key),
+            key => x.key.as_ref().map(|k| self.literal(k)),
         }
     }
 
@@ -646,7 +652,7 @@ impl Dialect {
         }
     }
 
-    fn render_template(&self, name: &str, ctx: minijinja::Value) -> Result<String, DialectError> {
+    fn render_template(&self, name: &str, ctx: minijinja::Value) -> Result<String> {
         let mut env = Environment::new();
         env.set_undefined_behavior(UndefinedBehavior::Strict);
         env.set_trim_blocks(true);
@@ -654,12 +660,14 @@ impl Dialect {
         env.set_keep_trailing_newline(true);
         for (file, text) in &self.templates {
             env.add_template(file, text)
-                .map_err(|e| DialectError(format!("dialect {}: template {file}: {e}", self.caps.name)))?;
+                .map_err(|e| self.broken(format!("dialect {}: template {file}: {e}", self.caps.name)))?;
         }
-        let tmpl = env.get_template(name).map_err(|e| DialectError(e.to_string()))?;
+        let tmpl = env
+            .get_template(name)
+            .map_err(|e| self.broken(format!("dialect {}: {e}", self.caps.name)))?;
         let mut sql = tmpl
             .render(ctx)
-            .map_err(|e| DialectError(format!("dialect {}: {name}: {e}", self.caps.name)))?;
+            .map_err(|e| self.broken(format!("dialect {}: {name}: {e}", self.caps.name)))?;
         if !sql.ends_with('\n') {
             sql.push('\n');
         }

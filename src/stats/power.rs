@@ -122,3 +122,61 @@ pub fn detectable(n_total: f64, mean: f64, sd: f64, alpha: f64, power: f64, shar
     let se = sd * (1.0 / (s[0] * n_total) + 1.0 / (worst * n_total)).sqrt();
     mde(se, alpha, power) / mean.abs()
 }
+
+/// Everything `plumb power` reports for one metric: the plan for the requested split, the
+/// plans of the usual two-arm alternatives, and what a fixed duration could detect.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Study {
+    pub main: Plan,
+    /// `("60/40", plan)`, ... (two-arm requests only; the requested split left out).
+    pub alternatives: Vec<(String, Plan)>,
+    /// The relative MDE of an experiment of the given days, if asked.
+    pub detectable: Option<f64>,
+}
+
+/// What a study should detect, and with which traffic.
+#[derive(Debug, Clone, Copy)]
+pub struct Target<'a> {
+    /// Relative change worth detecting (0.02 for 2%).
+    pub mde: f64,
+    pub alpha: f64,
+    pub power: f64,
+    /// Planned shares, control first.
+    pub split: &'a [f64],
+    pub units_per_day: f64,
+    /// Also report what an experiment of this many days could detect.
+    pub days: Option<f64>,
+}
+
+/// Plans a study to detect `target` on a metric with per-unit `mean` and `sd`.
+pub fn study(mean: f64, sd: f64, target: &Target) -> Option<Study> {
+    let Target {
+        mde,
+        alpha,
+        power,
+        split,
+        units_per_day,
+        days,
+    } = *target;
+    let delta = mde * mean.abs();
+    let main = plan(delta, sd, alpha, power, split, Some(units_per_day))?;
+    let alternatives = [
+        vec![50.0, 50.0],
+        vec![60.0, 40.0],
+        vec![80.0, 20.0],
+        vec![90.0, 10.0],
+    ]
+    .into_iter()
+    .filter(|s| split.len() == 2 && s != split)
+    .filter_map(|s| {
+        let label = format!("{}/{}", s[0], s[1]);
+        plan(delta, sd, alpha, power, &s, Some(units_per_day)).map(|p| (label, p))
+    })
+    .collect();
+    let detectable = days.map(|d| detectable(d * units_per_day, mean, sd, alpha, power, split));
+    Some(Study {
+        main,
+        alternatives,
+        detectable,
+    })
+}

@@ -165,10 +165,139 @@ impl From<SampleRatio> for SampleRatioOut {
     }
 }
 
+/// Which way a metric moved, from the adjusted p-value of its family.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+pub enum Change {
+    #[serde(rename = "increase")]
+    Increase,
+    #[serde(rename = "decrease")]
+    Decrease,
+    #[serde(rename = "no detectable change")]
+    NoDetectableChange,
+    #[serde(rename = "not enough data")]
+    NotEnoughData,
+}
+
+impl Change {
+    /// The documented JSON and table wording.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Change::Increase => "increase",
+            Change::Decrease => "decrease",
+            Change::NoDetectableChange => "no detectable change",
+            Change::NotEnoughData => "not enough data",
+        }
+    }
+
+    /// A significant move either way.
+    pub fn is_significant(self) -> bool {
+        matches!(self, Change::Increase | Change::Decrease)
+    }
+}
+
+/// What the change means given the metric's `direction`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+pub enum Verdict {
+    #[serde(rename = "better")]
+    Better,
+    #[serde(rename = "worse")]
+    Worse,
+    /// A significant change of a metric without `direction`.
+    #[serde(rename = "changed")]
+    Changed,
+    #[serde(rename = "no detectable change")]
+    NoDetectableChange,
+    #[serde(rename = "not enough data")]
+    NotEnoughData,
+}
+
+impl Verdict {
+    /// The documented JSON and table wording.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Verdict::Better => "better",
+            Verdict::Worse => "worse",
+            Verdict::Changed => "changed",
+            Verdict::NoDetectableChange => "no detectable change",
+            Verdict::NotEnoughData => "not enough data",
+        }
+    }
+
+    /// The verdict of `change` for a metric where higher is better (`Some(true)`), lower is
+    /// better (`Some(false)`), or no direction is declared (`None`).
+    pub fn of(change: Change, higher_is_better: Option<bool>) -> Verdict {
+        match (change, higher_is_better) {
+            (Change::Increase, Some(up)) => {
+                if up {
+                    Verdict::Better
+                } else {
+                    Verdict::Worse
+                }
+            }
+            (Change::Decrease, Some(up)) => {
+                if up {
+                    Verdict::Worse
+                } else {
+                    Verdict::Better
+                }
+            }
+            (Change::Increase | Change::Decrease, None) => Verdict::Changed,
+            (Change::NoDetectableChange, _) => Verdict::NoDetectableChange,
+            (Change::NotEnoughData, _) => Verdict::NotEnoughData,
+        }
+    }
+}
+
+impl std::fmt::Display for Verdict {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
+impl std::fmt::Display for Change {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
+/// The multiple-testing family of a result row.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+pub enum Family {
+    /// Primary metrics, overall rows: Holm (family-wise error).
+    #[serde(rename = "primary (Holm)")]
+    Primary,
+    /// Secondary metrics, overall rows: Benjamini-Hochberg (false discovery rate).
+    #[serde(rename = "secondary (Benjamini-Hochberg)")]
+    Secondary,
+    /// Every segment row: Benjamini-Hochberg.
+    #[serde(rename = "segment (Benjamini-Hochberg)")]
+    Segment,
+    /// Guardrails: unadjusted, so they fail more readily.
+    #[serde(rename = "guardrail (unadjusted)")]
+    Guardrail,
+}
+
+impl Family {
+    fn of(segment: bool, role: Role) -> Family {
+        match (segment, role) {
+            (true, _) => Family::Segment,
+            (false, Role::Primary) => Family::Primary,
+            (false, Role::Secondary) => Family::Secondary,
+            (false, Role::Guardrail) => Family::Guardrail,
+        }
+    }
+}
+
+fn role_str<S: serde::Serializer>(role: &Role, s: S) -> Result<S::Ok, S::Error> {
+    s.serialize_str(role.as_str())
+}
+
 #[derive(Debug, Clone, Serialize)]
 pub struct ResultRow {
     pub metric: String,
-    pub role: &'static str,
+    /// `primary`, `secondary` or `guardrail`.
+    #[serde(serialize_with = "role_str")]
+    pub role: Role,
     pub arm: String,
     /// Null for the whole experiment; the segment and its value for a slice.
     pub segment: Option<SegmentRef>,
@@ -178,13 +307,13 @@ pub struct ResultRow {
     pub relative: Option<RelativeOut>,
     /// `increase`, `decrease`, `no detectable change`, or `not enough data` (from the adjusted
     /// p-value of the row's family).
-    pub change: &'static str,
+    pub change: Change,
     /// `better`, `worse`, `no detectable change` or `not enough data`; `changed` for a
     /// significant change of a metric without `direction`.
-    pub verdict: &'static str,
+    pub verdict: Verdict,
     /// The multiple-testing family: `primary (Holm)`, `secondary (Benjamini-Hochberg)`,
     /// `segment (Benjamini-Hochberg)` or `guardrail (unadjusted)`.
-    pub family: &'static str,
+    pub family: Family,
     pub cuped: Option<CupedOut>,
     pub power: PowerOut,
     /// The effect if the arm were shipped to every unit that would trigger it (overall rows of
@@ -383,7 +512,7 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
     adjust_and_judge(spec, &mut results);
     let guardrails_failed: Vec<GuardrailFailure> = results
         .iter()
-        .filter(|r| r.segment.is_none() && r.role == "guardrail" && r.verdict == "worse")
+        .filter(|r| r.segment.is_none() && r.role == Role::Guardrail && r.verdict == Verdict::Worse)
         .map(|r| GuardrailFailure {
             metric: r.metric.clone(),
             arm: r.arm.clone(),
@@ -504,7 +633,7 @@ fn metric_rows(spec: &ReadoutSpec, rows: &[&ArmRow], segment: Option<SegmentRef>
             let mde = cmp.and_then(|c| c.mde);
             results.push(ResultRow {
                 metric: m.name.clone(),
-                role: m.role.as_str(),
+                role: m.role,
                 arm: arm.clone(),
                 segment: segment.clone(),
                 control: arm_summary(control.as_ref()),
@@ -515,14 +644,9 @@ fn metric_rows(spec: &ReadoutSpec, rows: &[&ArmRow], segment: Option<SegmentRef>
                     ci_low: r.ci_low,
                     ci_high: r.ci_high,
                 }),
-                change: "not enough data",
-                verdict: "not enough data",
-                family: match (&segment, m.role) {
-                    (Some(_), _) => "segment (Benjamini-Hochberg)",
-                    (None, Role::Primary) => "primary (Holm)",
-                    (None, Role::Secondary) => "secondary (Benjamini-Hochberg)",
-                    (None, Role::Guardrail) => "guardrail (unadjusted)",
-                },
+                change: Change::NotEnoughData,
+                verdict: Verdict::NotEnoughData,
+                family: Family::of(segment.is_some(), m.role),
                 cuped: cmp
                     .and_then(|c| c.cuped)
                     .map(|(theta, variance_reduction)| CupedOut {
@@ -544,11 +668,7 @@ fn metric_rows(spec: &ReadoutSpec, rows: &[&ArmRow], segment: Option<SegmentRef>
 
 /// Adjusts p-values within each family and sets `change` and `verdict` from them.
 fn adjust_and_judge(spec: &ReadoutSpec, results: &mut [ResultRow]) {
-    for family in [
-        "primary (Holm)",
-        "secondary (Benjamini-Hochberg)",
-        "segment (Benjamini-Hochberg)",
-    ] {
+    for family in [Family::Primary, Family::Secondary, Family::Segment] {
         let idx: Vec<usize> = (0..results.len())
             .filter(|&i| results[i].family == family)
             .filter(|&i| {
@@ -568,7 +688,7 @@ fn adjust_and_judge(spec: &ReadoutSpec, results: &mut [ResultRow]) {
                     .unwrap_or(1.0)
             })
             .collect();
-        let adjusted = if family.starts_with("primary") {
+        let adjusted = if family == Family::Primary {
             super::multiple::holm(&p)
         } else {
             super::multiple::benjamini_hochberg(&p)
@@ -586,25 +706,15 @@ fn adjust_and_judge(spec: &ReadoutSpec, results: &mut [ResultRow]) {
             .find(|m| m.name == r.metric)
             .and_then(|m| m.higher_is_better);
         r.change = match &r.difference {
-            None => "not enough data",
+            None => Change::NotEnoughData,
             Some(d) => match d.adjusted_p_value {
-                None => "no detectable change",
-                Some(p) if p >= spec.alpha => "no detectable change",
-                Some(_) if d.estimate > 0.0 => "increase",
-                Some(_) => "decrease",
+                None => Change::NoDetectableChange,
+                Some(p) if p >= spec.alpha => Change::NoDetectableChange,
+                Some(_) if d.estimate > 0.0 => Change::Increase,
+                Some(_) => Change::Decrease,
             },
         };
-        r.verdict = match (r.change, higher_is_better) {
-            ("increase", Some(up)) | ("decrease", Some(up)) => {
-                if (r.change == "increase") == up {
-                    "better"
-                } else {
-                    "worse"
-                }
-            }
-            ("increase", None) | ("decrease", None) => "changed",
-            (other, _) => other,
-        };
+        r.verdict = Verdict::of(r.change, higher_is_better);
     }
 }
 
@@ -699,7 +809,10 @@ fn cautions(
     if results.iter().any(|r| r.segment.is_some()) {
         out.push("Segment rows slice the same units many ways: expect some to differ by chance, and read them as a drill-down, not as separate results.".into());
     }
-    let thin = results.iter().filter(|r| r.change == "not enough data").count();
+    let thin = results
+        .iter()
+        .filter(|r| r.change == Change::NotEnoughData)
+        .count();
     if thin > 0 {
         out.push(format!(
             "{thin} results have too few units (fewer than two per arm with a value) to compare."
@@ -707,7 +820,7 @@ fn cautions(
     }
     for r in results
         .iter()
-        .filter(|r| r.segment.is_none() && r.role == "primary" && r.change == "no detectable change")
+        .filter(|r| r.segment.is_none() && r.role == Role::Primary && r.change == Change::NoDetectableChange)
     {
         let weak = match (r.power.power_at_declared_mde, r.power.mde_relative) {
             (Some(p), _) => {
@@ -726,7 +839,7 @@ fn cautions(
             ));
         }
     }
-    if results.iter().any(|r| r.change == "no detectable change") {
+    if results.iter().any(|r| r.change == Change::NoDetectableChange) {
         out.push("\"No detectable change\" is not evidence of no effect: the interval shows which effects the data cannot rule out.".into());
     }
     out

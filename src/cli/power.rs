@@ -1,0 +1,170 @@
+//! `plumb power`: units and days an experiment needs to detect a change in a metric, with the
+//! metric's variance and the traffic measured from history by the readout SQL itself.
+
+use super::{Format, Global, Outcome};
+use crate::context::EngineChoice;
+use crate::error::{Error, Result};
+use crate::output::power::PowerReport;
+use crate::stats::power::{Target, study};
+use crate::time::Timestamp;
+
+#[derive(Debug, clap::Args)]
+pub struct PowerArgs {
+    metric: String,
+    /// Smallest relative change worth detecting, e.g. `2%`.
+    #[arg(long)]
+    mde: String,
+    #[arg(long, default_value_t = 0.05)]
+    alpha: f64,
+    /// Target power.
+    #[arg(long, default_value_t = 0.8)]
+    power: f64,
+    /// Planned split, control first, e.g. `50,50` or `34,33,33`.
+    #[arg(long, value_delimiter = ',', default_value = "50,50")]
+    split: Vec<f64>,
+    /// Also report what an experiment of this many days could detect.
+    #[arg(long)]
+    days: Option<f64>,
+    /// Units entering per day (default: measured from the exposure log's history).
+    #[arg(long)]
+    units_per_day: Option<f64>,
+    /// Length of the history window, in days.
+    #[arg(long, default_value_t = 14)]
+    history_days: i64,
+    /// End of the history window (default: the latest experiment end on this exposure log).
+    #[arg(long)]
+    until: Option<String>,
+    /// Exposure log whose units form the population (default: the first of the metric's unit).
+    #[arg(long)]
+    exposures: Option<String>,
+    #[arg(long, value_enum, default_value = "table")]
+    format: Format,
+}
+
+/// Validated flags.
+pub struct Settings {
+    metric: String,
+    /// Relative MDE (0.02 for `2%`).
+    mde: f64,
+    alpha: f64,
+    power: f64,
+    split: Vec<f64>,
+    days: Option<f64>,
+    units_per_day: Option<f64>,
+    history_days: i64,
+    until: Option<String>,
+    exposures: Option<String>,
+    format: Format,
+}
+
+impl Settings {
+    pub fn from_args(a: PowerArgs) -> Result<Settings> {
+        let mde = a
+            .mde
+            .trim()
+            .strip_suffix('%')
+            .and_then(|p| p.trim().parse::<f64>().ok())
+            .filter(|p| *p > 0.0)
+            .map(|p| p / 100.0)
+            .ok_or_else(|| {
+                Error::usage(format!(
+                    "--mde must be a positive percentage such as 2%, got `{}`",
+                    a.mde
+                ))
+            })?;
+        if !(a.alpha > 0.0 && a.alpha < 1.0 && a.power > 0.0 && a.power < 1.0) {
+            return Err(Error::usage("--alpha and --power must be between 0 and 1"));
+        }
+        if a.split.len() < 2 || a.split.iter().any(|s| !s.is_finite() || *s <= 0.0) {
+            return Err(Error::usage(
+                "--split needs at least two positive shares, control first, e.g. 50,50",
+            ));
+        }
+        if a.history_days < 1 {
+            return Err(Error::usage("--history-days must be at least 1"));
+        }
+        Ok(Settings {
+            metric: a.metric,
+            mde,
+            alpha: a.alpha,
+            power: a.power,
+            split: a.split,
+            days: a.days,
+            units_per_day: a.units_per_day,
+            history_days: a.history_days,
+            until: a.until,
+            exposures: a.exposures,
+            format: a.format,
+        })
+    }
+}
+
+pub fn run(global: &Global, s: Settings) -> Result<Outcome> {
+    let ctx = global.open(EngineChoice::Local)?;
+    let catalog = ctx.catalog();
+    let metric = ctx.metric(&s.metric)?;
+    let unit = catalog.metrics[metric].unit;
+    let log = match &s.exposures {
+        Some(name) => ctx.exposure_log(name)?,
+        None => catalog
+            .exposure_logs
+            .iter()
+            .position(|l| l.unit == unit)
+            .ok_or_else(|| {
+                Error::usage(format!(
+                    "no exposure log counts {}s; pass --exposures NAME",
+                    catalog.units[unit].name
+                ))
+            })?,
+    };
+    let end = match &s.until {
+        Some(t) => Timestamp::parse(t).map_err(Error::usage)?,
+        None => catalog
+            .experiments
+            .iter()
+            .filter(|e| e.exposures == log)
+            .map(|e| e.end)
+            .max()
+            .ok_or_else(|| Error::usage("no experiment uses this exposure log; pass --until DATE"))?,
+    };
+    let start = end.plus(-s.history_days * 86_400);
+    let message = format!("reading {} days of history for {}", s.history_days, s.metric);
+    let history = super::with_progress(&message, || ctx.history(metric, log, start, end))?;
+    let (mean, sd) = (history.mean, history.sd);
+    if !(mean.is_finite() && sd.is_finite() && mean != 0.0) {
+        return Err(Error::usage(format!(
+            "{} has mean {mean} and sd {sd} over the history window; a relative MDE needs a nonzero mean",
+            s.metric
+        )));
+    }
+    let measured = history.units as f64 / s.history_days as f64;
+    let per_day = s.units_per_day.unwrap_or(measured);
+    let target = Target {
+        mde: s.mde,
+        alpha: s.alpha,
+        power: s.power,
+        split: &s.split,
+        units_per_day: per_day,
+        days: s.days,
+    };
+    let study = study(mean, sd, &target).ok_or_else(|| Error::usage("cannot plan with these inputs"))?;
+    let report = PowerReport {
+        metric: &s.metric,
+        start: start.to_iso(),
+        end: end.to_iso(),
+        history,
+        units_per_day: per_day,
+        units_per_day_measured: measured,
+        units_per_day_given: s.units_per_day.is_some(),
+        mde: s.mde,
+        alpha: s.alpha,
+        power: s.power,
+        split: &s.split,
+        days: s.days,
+        study,
+    };
+    Ok(Outcome::stdout(match s.format {
+        Format::Json => crate::output::power::json(&report),
+        Format::Table => crate::output::power::text(&report),
+    }))
+}

@@ -1,0 +1,464 @@
+//! The context of one command: a workspace opened once, and everything asked of it.
+//!
+//! Every command opens one [`Context`] and asks it for what it needs: an experiment by name
+//! (with did-you-mean), a dialect (built in or from `--dialects-dir`, loaded once), a compiled
+//! readout or report, a readout computed on the engine. No command wires the stages itself.
+//! The engine (local DuckDB or a PostgreSQL server) is opened lazily, at most once: for a
+//! local workspace it is the very DuckDB that read the local tables' schemas for the column
+//! checks, so a command opens DuckDB once however many queries it runs.
+
+use crate::diagnostics::{Diagnostic, did_you_mean};
+use crate::error::{Error, Result};
+use crate::execute::{self, Engine, NamedRow};
+use crate::ir::{self, Catalog, ExperimentId, ExposureLogId, MetricId, SegmentId};
+use crate::plan::{ExperimentPlan, ReportPlan};
+use crate::render::Dialect;
+use crate::source::SourceMap;
+use crate::stats::readout::Readout;
+use crate::time::Timestamp;
+use crate::workspace::{self, Opened, Schemas, Workspace};
+use crate::{ReadoutOptions, compile};
+use std::cell::RefCell;
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+use std::rc::Rc;
+
+/// Where a context's queries run.
+pub enum EngineChoice {
+    /// The embedded DuckDB over the workspace's `local:` data.
+    Local,
+    /// A PostgreSQL server (connection settings already completed by the caller).
+    #[cfg(feature = "postgres")]
+    Postgres(Box<postgres::Config>),
+}
+
+impl EngineChoice {
+    /// Who will compute the numbers, for messages.
+    pub fn describe(&self) -> &'static str {
+        match self {
+            EngineChoice::Local => "local DuckDB",
+            #[cfg(feature = "postgres")]
+            EngineChoice::Postgres(_) => "PostgreSQL",
+        }
+    }
+
+    /// The dialect the engine speaks (known before connecting).
+    pub fn dialect(&self) -> &'static str {
+        match self {
+            EngineChoice::Local => "duckdb",
+            #[cfg(feature = "postgres")]
+            EngineChoice::Postgres(_) => "postgres",
+        }
+    }
+}
+
+/// How to open a context.
+pub struct Options {
+    /// Extra dialect folders, searched before the built-in ones.
+    pub dialects_dir: Option<PathBuf>,
+    pub engine: EngineChoice,
+}
+
+impl Default for Options {
+    fn default() -> Self {
+        Options {
+            dialects_dir: None,
+            engine: EngineChoice::Local,
+        }
+    }
+}
+
+/// A per-unit mean and spread measured over a past window (`plumb power`).
+#[derive(Debug, Clone, Copy)]
+pub struct History {
+    /// Units first exposed in the window.
+    pub units: u64,
+    /// Units with a value of the metric.
+    pub n: u64,
+    pub mean: f64,
+    pub sd: f64,
+}
+
+/// One command's workspace, dialects and engine.
+pub struct Context {
+    workspace: Workspace,
+    sources: SourceMap,
+    warnings: Vec<Diagnostic>,
+    dialects_dir: Option<PathBuf>,
+    dialects: RefCell<BTreeMap<String, Rc<Dialect>>>,
+    choice: EngineChoice,
+    engine: RefCell<Option<Box<dyn Engine>>>,
+}
+
+impl Context {
+    /// Loads and resolves the workspace in `dir` (catalog errors: [`crate::ErrorKind::Catalog`]).
+    pub fn open(dir: &Path, options: Options) -> Result<Context> {
+        let mut sources = SourceMap::new();
+        let mut loaded = workspace::load(dir, &mut sources)?;
+        let mut engine: Option<Box<dyn Engine>> = None;
+        let schemas = match local_schemas(&loaded.local, &options.engine, &mut engine) {
+            Ok(s) => s,
+            Err(e) => {
+                loaded
+                    .diagnostics
+                    .push(workspace::unreadable_local_data(&loaded.raw_ws, &e));
+                Schemas::new()
+            }
+        };
+        match loaded.resolve(&sources, &schemas) {
+            Opened::Invalid(diags) => Err(Error::catalog(sources, diags)),
+            Opened::Ok(ws, warnings) => Ok(Context {
+                workspace: *ws,
+                sources,
+                warnings,
+                dialects_dir: options.dialects_dir,
+                dialects: RefCell::new(BTreeMap::new()),
+                choice: options.engine,
+                engine: RefCell::new(engine),
+            }),
+        }
+    }
+
+    pub fn workspace(&self) -> &Workspace {
+        &self.workspace
+    }
+
+    pub fn catalog(&self) -> &Catalog {
+        &self.workspace.catalog
+    }
+
+    pub fn sources(&self) -> &SourceMap {
+        &self.sources
+    }
+
+    /// Lint and workspace warnings (the catalog resolved without errors).
+    pub fn warnings(&self) -> &[Diagnostic] {
+        &self.warnings
+    }
+
+    pub fn dialects_dir(&self) -> Option<&Path> {
+        self.dialects_dir.as_deref()
+    }
+
+    /// The experiment called `name`, or a usage error with a did-you-mean hint.
+    pub fn experiment(&self, name: &str) -> Result<ExperimentId> {
+        let names = self.catalog().experiments.iter().map(|e| e.name.as_str());
+        self.catalog()
+            .experiment(name)
+            .ok_or_else(|| unknown("experiment", "experiments", name, names))
+    }
+
+    pub fn metric(&self, name: &str) -> Result<MetricId> {
+        let names = self.catalog().metrics.iter().map(|m| m.name.as_str());
+        self.catalog()
+            .metric(name)
+            .ok_or_else(|| unknown("metric", "metrics", name, names))
+    }
+
+    pub fn segments(&self, names: &[String]) -> Result<Vec<SegmentId>> {
+        let c = self.catalog();
+        names
+            .iter()
+            .map(|name| {
+                c.segments.iter().position(|s| &s.name == name).ok_or_else(|| {
+                    unknown(
+                        "segment",
+                        "segments",
+                        name,
+                        c.segments.iter().map(|s| s.name.as_str()),
+                    )
+                })
+            })
+            .collect()
+    }
+
+    pub fn exposure_log(&self, name: &str) -> Result<ExposureLogId> {
+        let c = self.catalog();
+        c.exposure_logs
+            .iter()
+            .position(|l| l.name == name)
+            .ok_or_else(|| {
+                unknown(
+                    "exposure log",
+                    "exposure logs",
+                    name,
+                    c.exposure_logs.iter().map(|l| l.name.as_str()),
+                )
+            })
+    }
+
+    /// Dialect `name` (None: the workspace's), loaded once per context.
+    pub fn dialect(&self, name: Option<&str>) -> Result<Rc<Dialect>> {
+        let name = name.unwrap_or(&self.workspace.dialect).to_string();
+        if let Some(d) = self.dialects.borrow().get(&name) {
+            return Ok(d.clone());
+        }
+        let d = Rc::new(Dialect::load(&name, self.dialects_dir.as_deref())?);
+        self.dialects.borrow_mut().insert(name, d.clone());
+        Ok(d)
+    }
+
+    /// The dialect of the context's engine.
+    pub fn engine_dialect(&self) -> Result<Rc<Dialect>> {
+        self.dialect(Some(self.choice.dialect()))
+    }
+
+    /// The readout query of `experiment` (plus segments `by`) in `dialect`.
+    pub fn compile_readout(
+        &self,
+        experiment: ExperimentId,
+        by: &[SegmentId],
+        dialect: &Dialect,
+    ) -> Result<(ExperimentPlan, String)> {
+        self.check_grouping_sets(experiment, dialect)?;
+        compile::compile_experiment(self.catalog(), experiment, by, dialect)
+    }
+
+    /// A report query in `dialect`.
+    pub fn compile_report(&self, plan: &ReportPlan, dialect: &Dialect) -> Result<String> {
+        compile::compile_report(plan, dialect)
+    }
+
+    /// Segments need GROUPING SETS: a located catalog error when the experiment declares them.
+    fn check_grouping_sets(&self, experiment: ExperimentId, dialect: &Dialect) -> Result<()> {
+        if dialect.caps.grouping_sets {
+            return Ok(());
+        }
+        let exp = &self.catalog().experiments[experiment];
+        if exp.segments.is_empty() {
+            return Ok(());
+        }
+        let span = self
+            .workspace
+            .raw
+            .experiments
+            .iter()
+            .find(|e| e.value.name.as_deref() == Some(exp.name.as_str()))
+            .and_then(|e| e.key_span("segments"));
+        let diag = Diagnostic::error(
+            "E017",
+            format!(
+                "experiment `{}` declares segments, but dialect {} has no GROUPING SETS",
+                exp.name, dialect.caps.name
+            ),
+        )
+        .at(span)
+        .hint("segments are computed in one statement with GROUPING SETS: use a dialect with `grouping_sets: true`, or remove `segments:`");
+        Err(Error::catalog(self.sources.clone(), vec![diag]))
+    }
+
+    /// Runs `sql` on the context's engine, opening it on first use.
+    pub fn query(&self, sql: &str) -> Result<Vec<NamedRow>> {
+        let mut slot = self.engine.borrow_mut();
+        if slot.is_none() {
+            *slot = Some(open_engine(&self.choice, &self.workspace)?);
+        }
+        slot.as_mut().expect("opened above").query(sql)
+    }
+
+    /// The readout of `experiment` computed on the context's engine.
+    pub fn readout(
+        &self,
+        experiment: ExperimentId,
+        by: &[SegmentId],
+        options: ReadoutOptions,
+    ) -> Result<Readout> {
+        self.check_grouping_sets(experiment, &*self.engine_dialect()?)?;
+        self.readout_of(self.catalog(), experiment, by, options)
+    }
+
+    /// The readout of an experiment of `catalog` (e.g. another revision's, for `diff --data`),
+    /// computed on this context's engine and data.
+    pub fn readout_of(
+        &self,
+        catalog: &Catalog,
+        experiment: ExperimentId,
+        by: &[SegmentId],
+        options: ReadoutOptions,
+    ) -> Result<Readout> {
+        let dialect = self.engine_dialect()?;
+        let (plan, sql) = compile::compile_experiment(catalog, experiment, by, &dialect)?;
+        let table = execute::stats_table(&plan, &self.query(&sql)?)?;
+        let spec = compile::readout_spec(catalog, experiment, &plan, options);
+        let mut readout = crate::stats::readout::build(&spec, &table);
+        if options.population_impact {
+            self.add_population_impact(catalog, experiment, &table, &dialect, &mut readout)?;
+        }
+        Ok(readout)
+    }
+
+    /// The readout from a statistics table exported from a warehouse (`analyze --stats FILE`),
+    /// checked against the fingerprint of the query this catalog compiles to.
+    pub fn readout_from_stats_file(
+        &self,
+        experiment: ExperimentId,
+        file: &Path,
+        options: ReadoutOptions,
+    ) -> Result<Readout> {
+        let plan = crate::plan::plan_experiment(self.catalog(), experiment, &[]);
+        let rows = execute::read_stats_file(file)?;
+        execute::check_fingerprint(&plan, &rows)?;
+        let table = execute::stats_table(&plan, &rows)?;
+        let spec = compile::readout_spec(self.catalog(), experiment, &plan, options);
+        Ok(crate::stats::readout::build(&spec, &table))
+    }
+
+    /// Whole-population impact: daily totals of the experiment's count and sum metrics over
+    /// the whole population in the experiment's period, from the report query of the same
+    /// metrics (only additive per-unit values have a meaningful population total).
+    fn add_population_impact(
+        &self,
+        catalog: &Catalog,
+        experiment: ExperimentId,
+        table: &crate::stats::readout::StatsTable,
+        dialect: &Dialect,
+        readout: &mut Readout,
+    ) -> Result<()> {
+        let exp = &catalog.experiments[experiment];
+        let metric_ids: Vec<MetricId> = exp
+            .metrics
+            .iter()
+            .map(|(m, _)| *m)
+            .filter(|m| {
+                matches!(
+                    catalog.metrics[*m].kind,
+                    ir::MetricKind::Events {
+                        aggregation: ir::Aggregation::Count | ir::Aggregation::Sum,
+                        ..
+                    }
+                )
+            })
+            .collect();
+        if metric_ids.is_empty() {
+            return Ok(());
+        }
+        let plan = crate::plan::plan_report(
+            catalog,
+            &metric_ids,
+            crate::time::Grain::Day,
+            exp.start,
+            exp.end,
+            None,
+            None,
+        );
+        let days = (exp.end.0 - exp.start.0) as f64 / 86_400.0;
+        let sql = compile::compile_report(&plan, dialect)?;
+        let rows = crate::report::assemble(&plan, &self.query(&sql)?)?;
+        let mut population = BTreeMap::new();
+        for r in &rows {
+            *population.entry(r.metric.clone()).or_insert(0.0) += r.total.unwrap_or(0.0) / days;
+        }
+        let triggered = table
+            .rows
+            .iter()
+            .filter(|r| r.segment.is_none())
+            .map(|r| r.units)
+            .sum::<u64>() as f64
+            / days;
+        crate::stats::readout::add_population_impact(readout, triggered, &population);
+        Ok(())
+    }
+
+    /// A report computed on the context's engine.
+    pub fn report(&self, plan: &ReportPlan) -> Result<Vec<crate::report::ReportRow>> {
+        let sql = compile::compile_report(plan, &*self.engine_dialect()?)?;
+        crate::report::assemble(plan, &self.query(&sql)?)
+    }
+
+    /// The per-unit mean and sd of `metric` over units of exposure log `log` first exposed in
+    /// `[start, end)`, from the readout SQL of a one-arm history plan (`plan::plan_history`).
+    pub fn history(
+        &self,
+        metric: MetricId,
+        log: ExposureLogId,
+        start: Timestamp,
+        end: Timestamp,
+    ) -> Result<History> {
+        let plan = crate::plan::plan_history(self.catalog(), metric, log, start, end);
+        let sql = compile::compile_plan(&plan, &*self.engine_dialect()?)?;
+        let table = execute::stats_table(&plan, &self.query(&sql)?)?;
+        let row = table
+            .rows
+            .iter()
+            .find(|r| r.arm == crate::plan::HISTORY_ARM)
+            .ok_or_else(|| {
+                Error::data(format!(
+                    "no exposed units between {} and {}",
+                    start.to_iso(),
+                    end.to_iso()
+                ))
+            })?;
+        let (mean, sd, n) = match &plan.metrics[0].kind {
+            crate::plan::PlannedKind::Mean { column } => {
+                let m = row.columns[column];
+                (m.mean, m.sd(), m.n)
+            }
+            crate::plan::PlannedKind::Ratio {
+                numerator,
+                denominator,
+            } => {
+                let r = crate::stats::RatioMoments {
+                    numerator: row.columns[numerator],
+                    denominator: row.columns[denominator],
+                    cov: row.covariances[&crate::columns::covariance(numerator, denominator)],
+                };
+                (
+                    r.ratio(),
+                    (r.var_of_ratio() * r.numerator.n as f64).sqrt(),
+                    r.numerator.n,
+                )
+            }
+        };
+        Ok(History {
+            units: row.units,
+            n,
+            mean,
+            sd,
+        })
+    }
+}
+
+/// A usage error for an unknown name, with a did-you-mean hint or the list of names.
+fn unknown<'a>(kind: &str, plural: &str, name: &str, names: impl Iterator<Item = &'a str>) -> Error {
+    let names: Vec<&str> = names.collect();
+    let hint = did_you_mean(name, names.iter().copied())
+        .unwrap_or_else(|| format!("{plural} in this catalog: {}", names.join(", ")));
+    Error::usage(format!("unknown {kind} `{name}`; {hint}"))
+}
+
+/// Schemas of the local tables. When every declared file exists and the context runs locally,
+/// the DuckDB that reads them is kept as the context's engine.
+fn local_schemas(
+    local: &workspace::LocalData,
+    choice: &EngineChoice,
+    engine: &mut Option<Box<dyn Engine>>,
+) -> Result<Schemas> {
+    #[cfg(feature = "engine")]
+    if !local.is_empty() && local.complete() && matches!(choice, EngineChoice::Local) {
+        let duck = execute::duckdb::LocalEngine::open(local.database.as_deref(), &local.tables)?;
+        let schemas = duck.schemas()?;
+        *engine = Some(Box::new(duck));
+        return Ok(schemas);
+    }
+    let _ = (choice, &engine);
+    workspace::local_schemas(&local.present())
+}
+
+fn open_engine(choice: &EngineChoice, ws: &Workspace) -> Result<Box<dyn Engine>> {
+    match choice {
+        #[cfg(feature = "engine")]
+        EngineChoice::Local => Ok(Box::new(execute::duckdb::LocalEngine::open(
+            ws.local_database.as_deref(),
+            &ws.local_tables,
+        )?)),
+        #[cfg(not(feature = "engine"))]
+        EngineChoice::Local => {
+            let _ = ws;
+            Err(Error::usage(
+                "this plumb was built without the `engine` feature, so it cannot run SQL locally",
+            ))
+        }
+        #[cfg(feature = "postgres")]
+        EngineChoice::Postgres(config) => Ok(Box::new(execute::postgres::PostgresEngine::connect(config)?)),
+    }
+}
