@@ -57,6 +57,8 @@ pub struct Options {
     /// Extra dialect folders, searched before the built-in ones.
     pub dialects_dir: Option<PathBuf>,
     pub engine: EngineChoice,
+    /// Where the local engine spills when `local.temp_directory` is not set.
+    pub spill_dir: Option<PathBuf>,
 }
 
 impl Default for Options {
@@ -64,6 +66,7 @@ impl Default for Options {
         Options {
             dialects_dir: None,
             engine: EngineChoice::Local,
+            spill_dir: None,
         }
     }
 }
@@ -95,6 +98,9 @@ impl Context {
     pub fn open(dir: &Path, options: Options) -> Result<Context> {
         let mut sources = SourceMap::new();
         let mut loaded = workspace::load(dir, &mut sources)?;
+        if loaded.local.settings.temp_directory.is_none() {
+            loaded.local.settings.temp_directory = options.spill_dir.clone();
+        }
         let mut engine: Option<Box<dyn Engine>> = None;
         let schemas = match local_schemas(&loaded.local, &options.engine, &mut engine) {
             Ok(s) => s,
@@ -435,7 +441,11 @@ fn local_schemas(
 ) -> Result<Schemas> {
     #[cfg(feature = "engine")]
     if !local.is_empty() && local.complete() && matches!(choice, EngineChoice::Local) {
-        let duck = execute::duckdb::LocalEngine::open(local.database.as_deref(), &local.tables)?;
+        let duck = execute::duckdb::LocalEngine::open_with(
+            local.database.as_deref(),
+            &local.tables,
+            &local.settings,
+        )?;
         let schemas = duck.schemas()?;
         *engine = Some(Box::new(duck));
         return Ok(schemas);
@@ -447,9 +457,10 @@ fn local_schemas(
 fn open_engine(choice: &EngineChoice, ws: &Workspace) -> Result<Box<dyn Engine>> {
     match choice {
         #[cfg(feature = "engine")]
-        EngineChoice::Local => Ok(Box::new(execute::duckdb::LocalEngine::open(
+        EngineChoice::Local => Ok(Box::new(execute::duckdb::LocalEngine::open_with(
             ws.local_database.as_deref(),
             &ws.local_tables,
+            &ws.local_settings,
         )?)),
         #[cfg(not(feature = "engine"))]
         EngineChoice::Local => {

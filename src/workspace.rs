@@ -21,6 +21,18 @@ use std::path::{Path, PathBuf};
 /// Column names of local tables, by table name (checked against SQL fragments).
 pub type Schemas = BTreeMap<String, Vec<String>>;
 
+/// How the local engine runs (`local:` in plumb.yaml; unset values are DuckDB's defaults).
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct LocalSettings {
+    /// Worker threads (default: every core).
+    pub threads: Option<u32>,
+    /// Memory limit, e.g. `4GB` (default: 80% of the machine's memory); beyond it operators
+    /// spill to `temp_directory`.
+    pub memory_limit: Option<String>,
+    /// Where the engine spills (default: chosen by the caller, in the system's temp folder).
+    pub temp_directory: Option<PathBuf>,
+}
+
 #[derive(Debug)]
 pub struct Workspace {
     pub root: PathBuf,
@@ -31,6 +43,7 @@ pub struct Workspace {
     pub dialect: String,
     pub local_database: Option<PathBuf>,
     pub local_tables: Vec<(String, PathBuf)>,
+    pub local_settings: LocalSettings,
     /// Number of catalog files read.
     pub files: usize,
 }
@@ -46,6 +59,7 @@ pub enum Opened {
 pub struct LocalData {
     pub database: Option<PathBuf>,
     pub tables: Vec<(String, PathBuf)>,
+    pub settings: LocalSettings,
 }
 
 impl LocalData {
@@ -56,15 +70,32 @@ impl LocalData {
 
     /// True when every declared file exists (so an engine opened on it is the real one).
     pub fn complete(&self) -> bool {
-        self.database.as_ref().is_none_or(|p| p.is_file()) && self.tables.iter().all(|(_, p)| p.is_file())
+        self.database.as_ref().is_none_or(|p| p.is_file()) && self.tables.iter().all(|(_, p)| exists(p))
     }
 
     /// Only the files that exist (enough to check columns of the tables that are there).
     pub fn present(&self) -> LocalData {
         LocalData {
             database: self.database.clone().filter(|p| p.is_file()),
-            tables: self.tables.iter().filter(|(_, p)| p.is_file()).cloned().collect(),
+            tables: self.tables.iter().filter(|(_, p)| exists(p)).cloned().collect(),
+            settings: self.settings.clone(),
         }
+    }
+}
+
+/// A local table's file exists; for a glob (`data/orders/*.parquet`), its folder does (the
+/// engine then says whether any file matches).
+fn exists(path: &Path) -> bool {
+    if path.to_string_lossy().contains(['*', '?', '[']) {
+        let mut dir = path.to_path_buf();
+        while dir.to_string_lossy().contains(['*', '?', '[']) {
+            if !dir.pop() {
+                return false;
+            }
+        }
+        dir.as_os_str().is_empty() || dir.is_dir()
+    } else {
+        path.is_file()
     }
 }
 
@@ -89,6 +120,11 @@ pub fn load(dir: &Path, sources: &mut SourceMap) -> Result<Loaded> {
             .tables
             .map(|t| t.0.into_iter().map(|(n, p)| (n, raw_ws.root.join(p))).collect())
             .unwrap_or_default(),
+        settings: LocalSettings {
+            threads: local.threads,
+            memory_limit: local.memory_limit.clone(),
+            temp_directory: local.temp_directory.as_ref().map(|p| raw_ws.root.join(p)),
+        },
     };
     Ok(Loaded {
         raw_ws,
@@ -140,6 +176,7 @@ impl Loaded {
                     .hint("fix the path (relative to plumb.yaml) or remove `database:`"),
             );
         }
+        check_local_settings(&raw_ws, &local.settings, &mut diagnostics);
         let dialect = raw_ws.value.dialect.clone().unwrap_or_else(|| "duckdb".into());
         let levels = raw_ws.value.lint.clone().map(|l| l.0).unwrap_or_default();
         check_lint_levels(&raw_ws, &levels, &mut diagnostics);
@@ -162,11 +199,48 @@ impl Loaded {
                 dialect,
                 local_database: local.database,
                 local_tables: local.tables,
+                local_settings: local.settings,
                 files,
             }),
             diagnostics,
         )
     }
+}
+
+/// `threads` at least 1; `memory_limit` a size DuckDB reads (`4GB`, `512 MiB`).
+fn check_local_settings(raw_ws: &RawWorkspace, s: &LocalSettings, diags: &mut Vec<Diagnostic>) {
+    let span = |key: &str| raw_ws.value_span(&[Seg::Key("local".into()), Seg::Key(key.into())]);
+    if s.threads == Some(0) {
+        diags.push(
+            Diagnostic::error("E017", "`threads` must be at least 1")
+                .at(span("threads"))
+                .hint("remove `threads:` to use every core; results are the same for any value"),
+        );
+    }
+    if let Some(m) = &s.memory_limit
+        && !is_memory_size(m)
+    {
+        diags.push(
+            Diagnostic::error("E017", format!("`memory_limit` `{m}` is not a size"))
+                .at(span("memory_limit"))
+                .hint("write a number and a unit, e.g. 4GB, 512MB or 8GiB"),
+        );
+    }
+}
+
+/// A number followed by KB, MB, GB, TB (or KiB, MiB, GiB, TiB), any case, optional space.
+pub fn is_memory_size(text: &str) -> bool {
+    let t = text.trim();
+    let split = t
+        .find(|c: char| !(c.is_ascii_digit() || c == '.'))
+        .unwrap_or(t.len());
+    let (number, unit) = t.split_at(split);
+    let unit = unit.trim().to_ascii_lowercase();
+    number.parse::<f64>().is_ok_and(|n| n > 0.0)
+        && matches!(
+            unit.as_str(),
+            "kb" | "mb" | "gb" | "tb" | "kib" | "mib" | "gib" | "tib"
+        )
 }
 
 fn check_lint_levels(raw_ws: &RawWorkspace, levels: &[(String, String)], diags: &mut Vec<Diagnostic>) {
@@ -221,7 +295,12 @@ pub fn local_schemas(local: &LocalData) -> Result<Schemas> {
     }
     #[cfg(feature = "engine")]
     {
-        crate::execute::duckdb::LocalEngine::open(local.database.as_deref(), &local.tables)?.schemas()
+        crate::execute::duckdb::LocalEngine::open_with(
+            local.database.as_deref(),
+            &local.tables,
+            &local.settings,
+        )?
+        .schemas()
     }
     #[cfg(not(feature = "engine"))]
     Ok(Schemas::new())

@@ -98,6 +98,8 @@ impl Global {
             Options {
                 dialects_dir: self.dialects_dir.clone(),
                 engine,
+                // The system's temporary folder (TMPDIR): reading the environment is ours.
+                spill_dir: Some(std::env::temp_dir().join(format!("plumb-spill-{}", std::process::id()))),
             },
         )
     }

@@ -1,18 +1,29 @@
 //! The embedded DuckDB engine: opens the workspace's local data and runs a statement.
 //!
-//! Local tables named in `plumb.yaml` (`local.tables`: name -> CSV or Parquet path) become
-//! views with the table's name, so the SQL that runs here is byte for byte the SQL a warehouse
-//! would run. A `local.database` file is attached read-only.
+//! Local tables named in `plumb.yaml` (`local.tables`: name -> a CSV, Parquet, JSON or NDJSON
+//! file, or a glob such as `data/orders/*.parquet`) become views with the table's name, so the
+//! SQL that runs here is byte for byte the SQL a warehouse would run. A `local.database` file
+//! is attached read-only. The readers are compiled in (the `duckdb` crate's `parquet` and
+//! `json` features) and extension auto-install and auto-load are off: nothing is ever
+//! downloaded.
+//!
+//! All cores, byte-identical results: a statement with an aggregation over CTEs runs in two
+//! stages ([`super::staged`]): the exact per-unit work in parallel, materialised in a fixed
+//! order, then the floating-point aggregation over it on one thread.
 
-use super::{Cell, NamedRow};
+use super::{Cell, NamedRow, staged};
 use crate::error::{Error, Result};
 use duckdb::types::Value;
-use duckdb::{AccessMode, Config, Connection};
-use std::path::Path;
+use duckdb::{Config, Connection};
+use std::path::{Path, PathBuf};
+
+pub use crate::workspace::LocalSettings;
 
 /// An open local engine.
 pub struct LocalEngine {
     conn: Connection,
+    /// The thread count to restore after a serial stage.
+    threads: i64,
 }
 
 fn err(context: &str, e: duckdb::Error) -> Error {
@@ -32,48 +43,112 @@ fn literal(value: &str) -> String {
     format!("'{}'", value.replace('\'', "''"))
 }
 
+/// Whether a local table path is a glob pattern (`*`, `?`, `[`).
+pub fn is_glob(path: &Path) -> bool {
+    path.to_string_lossy().contains(['*', '?', '['])
+}
+
+/// The reader of a local file or glob, chosen by its extension.
+fn reader(path: &Path) -> Option<String> {
+    let p = literal(&path.to_string_lossy());
+    let name = path.file_name()?.to_string_lossy().to_ascii_lowercase();
+    let name = name
+        .strip_suffix(".gz")
+        .or_else(|| name.strip_suffix(".zst"))
+        .unwrap_or(&name);
+    let ext = name.rsplit('.').next()?;
+    Some(match ext {
+        "parquet" => format!("read_parquet({p})"),
+        "csv" | "tsv" => format!("read_csv({p}, header = true)"),
+        "json" => format!("read_json({p})"),
+        "ndjson" | "jsonl" => format!("read_json({p}, format = 'newline_delimited')"),
+        _ => return None,
+    })
+}
+
 impl LocalEngine {
     /// Opens DuckDB on `database` (read-only) or in memory, and maps `tables` to views.
-    pub fn open(database: Option<&Path>, tables: &[(String, std::path::PathBuf)]) -> Result<LocalEngine> {
-        let conn = match database {
-            Some(path) => {
-                let config = Config::default()
-                    .access_mode(AccessMode::ReadOnly)
-                    .map_err(|e| err("configuring DuckDB", e))?;
-                Connection::open_with_flags(path, config)
-                    .map_err(|e| err(&format!("opening {}", path.display()), e))?
-            }
-            None => Connection::open_in_memory().map_err(|e| err("starting DuckDB", e))?,
-        };
-        // One thread: parallel aggregation adds floating-point numbers in a different order on
-        // every run, and the same inputs must give byte-identical results.
-        conn.execute_batch("SET threads = 1")
-            .map_err(|e| err("configuring DuckDB", e))?;
-        let engine = LocalEngine { conn };
+    pub fn open(database: Option<&Path>, tables: &[(String, PathBuf)]) -> Result<LocalEngine> {
+        Self::open_with(database, tables, &LocalSettings::default())
+    }
+
+    /// [`LocalEngine::open`] with thread, memory and spill settings.
+    pub fn open_with(
+        database: Option<&Path>,
+        tables: &[(String, PathBuf)],
+        settings: &LocalSettings,
+    ) -> Result<LocalEngine> {
+        let configure = |e| err("configuring DuckDB", e);
+        // Never fetch code from the network: the readers plumb needs are compiled in.
+        let mut config = Config::default()
+            .with("autoinstall_known_extensions", "false")
+            .and_then(|c| c.with("autoload_known_extensions", "false"))
+            .map_err(configure)?;
+        if let Some(t) = settings.threads {
+            config = config.threads(i64::from(t)).map_err(configure)?;
+        }
+        if let Some(m) = &settings.memory_limit {
+            config = config.max_memory(m).map_err(configure)?;
+        }
+        if let Some(dir) = &settings.temp_directory {
+            config = config
+                .with("temp_directory", dir.to_string_lossy())
+                .map_err(configure)?;
+        }
+        let conn = Connection::open_in_memory_with_flags(config).map_err(|e| err("starting DuckDB", e))?;
+        if let Some(path) = database {
+            // Attached read-only; the in-memory main database holds plumb's temporary tables.
+            conn.execute_batch(&format!(
+                "ATTACH {} AS plumb_local (READ_ONLY); USE plumb_local",
+                literal(&path.to_string_lossy())
+            ))
+            .map_err(|e| data_err(&format!("opening {}", path.display()), e))?;
+        }
+        let threads = conn
+            .query_row("SELECT current_setting('threads')", [], |r| r.get::<_, i64>(0))
+            .map_err(configure)?;
+        let engine = LocalEngine { conn, threads };
         for (name, path) in tables {
             engine.register(name, path)?;
         }
         Ok(engine)
     }
 
-    /// Makes a CSV or Parquet file visible as a view named `name`.
+    /// Makes a CSV, Parquet, JSON or NDJSON file (or glob of them) visible as view `name`.
     pub fn register(&self, name: &str, path: &Path) -> Result<()> {
-        if !path.is_file() {
+        if path.is_dir() {
+            return Err(Error::data(format!(
+                "local table `{name}`: {} is a folder; name a file or a glob such as {}/*.parquet",
+                path.display(),
+                path.display()
+            )));
+        }
+        if is_glob(path) {
+            let matched: i64 = self
+                .conn
+                .query_row(
+                    &format!("SELECT count(*) FROM glob({})", literal(&path.to_string_lossy())),
+                    [],
+                    |r| r.get(0),
+                )
+                .map_err(|e| data_err(&format!("local table `{name}`"), e))?;
+            if matched == 0 {
+                return Err(Error::data(format!(
+                    "local table `{name}`: no file matches {}",
+                    path.display()
+                )));
+            }
+        } else if !path.is_file() {
             return Err(Error::data(format!(
                 "local table `{name}`: file {} does not exist",
                 path.display()
             )));
         }
-        let p = literal(&path.to_string_lossy());
-        let reader = match path.extension().and_then(|e| e.to_str()) {
-            Some("parquet") => format!("read_parquet({p})"),
-            Some("csv") | Some("tsv") | Some("gz") => format!("read_csv({p}, header = true)"),
-            _ => {
-                return Err(Error::data(format!(
-                    "local table `{name}`: {} is neither .csv nor .parquet",
-                    path.display()
-                )));
-            }
+        let Some(reader) = reader(path) else {
+            return Err(Error::data(format!(
+                "local table `{name}`: {} is not .csv, .tsv, .parquet, .json, .ndjson or .jsonl (optionally .gz)",
+                path.display()
+            )));
         };
         let context = format!("reading local table `{name}` from {}", path.display());
         self.conn
@@ -111,8 +186,43 @@ impl LocalEngine {
         Ok(())
     }
 
-    /// Runs one statement and returns its rows by column name.
+    /// Runs one statement and returns its rows by column name, in two stages when it has an
+    /// aggregation over CTEs (see [`staged`]), so the result is the same whatever the number
+    /// of threads.
     pub fn query(&self, sql: &str) -> Result<Vec<NamedRow>> {
+        let Some(plan) = staged::stage(sql) else {
+            return self.run(sql);
+        };
+        let result = self.run_staged(&plan);
+        // Whatever happened: drop the stage tables and restore the thread count.
+        let drops: String = plan
+            .tables
+            .iter()
+            .map(|(t, _)| format!("DROP TABLE IF EXISTS {t}; "))
+            .collect();
+        let cleanup = self
+            .conn
+            .execute_batch(&format!("{drops}SET threads = {}", self.threads))
+            .map_err(|e| err("cleaning up after a query", e));
+        let rows = result?;
+        cleanup?;
+        Ok(rows)
+    }
+
+    fn run_staged(&self, plan: &staged::Staged) -> Result<Vec<NamedRow>> {
+        for (_, create) in &plan.tables {
+            self.conn
+                .execute_batch(create)
+                .map_err(|e| err("running the query (per-unit stage)", e))?;
+        }
+        self.conn
+            .execute_batch("SET threads = 1")
+            .map_err(|e| err("configuring DuckDB", e))?;
+        self.run(&plan.finish)
+    }
+
+    /// Runs one statement as it is.
+    fn run(&self, sql: &str) -> Result<Vec<NamedRow>> {
         let mut stmt = self
             .conn
             .prepare(sql)

@@ -11,6 +11,7 @@
 pub mod duckdb;
 #[cfg(feature = "postgres")]
 pub mod postgres;
+pub mod staged;
 
 use crate::columns::{self, Stat};
 use crate::error::{Error, Result};

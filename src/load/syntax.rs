@@ -98,14 +98,23 @@ pub struct WorkspaceFile {
 }
 
 pub const WORKSPACE_KEYS: &[&str] = &["catalog", "dialect", "local", "lint"];
-pub const LOCAL_KEYS: &[&str] = &["database", "tables"];
+pub const LOCAL_KEYS: &[&str] = &["database", "tables", "threads", "memory_limit", "temp_directory"];
 
-/// `local:` in `plumb.yaml`: a DuckDB file and/or table name -> CSV/Parquet path.
+/// `local:` in `plumb.yaml`: a DuckDB file and/or table name -> CSV/Parquet/JSON path or glob,
+/// and how the local engine runs.
 #[derive(Debug, Clone, Default, Deserialize, Serialize, JsonSchema)]
 #[schemars(deny_unknown_fields)]
 pub struct LocalData {
     pub database: Option<String>,
     pub tables: Option<OrderedMap<String>>,
+    /// Worker threads of the local engine (default: every core). Results are the same for
+    /// any value.
+    pub threads: Option<u32>,
+    /// Memory limit of the local engine, e.g. `4GB` (default: 80% of memory); beyond it,
+    /// large operators spill to `temp_directory`.
+    pub memory_limit: Option<String>,
+    /// Folder the local engine spills to (default: in the system's temporary directory).
+    pub temp_directory: Option<String>,
 }
 
 #[derive(Debug, Clone, Deserialize, Serialize, JsonSchema)]

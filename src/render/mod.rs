@@ -122,6 +122,7 @@ pub struct Capabilities {
     pub add_interval: String,
     pub covar_samp: String,
     pub percentile: String,
+    pub sum_input: String,
     pub backslash_escapes: bool,
     pub date_trunc: String,
 }
@@ -142,6 +143,7 @@ struct CapabilitiesOverride {
     add_interval: Option<String>,
     covar_samp: Option<String>,
     percentile: Option<String>,
+    sum_input: Option<String>,
     backslash_escapes: Option<bool>,
     date_trunc: Option<String>,
 }
@@ -212,6 +214,7 @@ impl Dialect {
                 add_interval,
                 covar_samp,
                 percentile,
+                sum_input,
                 backslash_escapes,
                 date_trunc
             );
@@ -234,6 +237,7 @@ impl Dialect {
             ("add_interval", &caps.add_interval),
             ("covar_samp", &caps.covar_samp),
             ("percentile", &caps.percentile),
+            ("sum_input", &caps.sum_input),
             ("date_trunc", &caps.date_trunc),
         ] {
             snippets
@@ -352,8 +356,11 @@ impl Dialect {
     }
 
     /// A conditional aggregate: `agg` over rows where `cond` holds.
-    fn aggregate(&self, agg: &Aggregate, cond: Option<&str>) -> String {
-        let value = agg.value.as_ref().map(|v| self.fragment(v)).unwrap_or_default();
+    fn aggregate(&self, agg: &Aggregate, cond: Option<&str>) -> Result<String> {
+        let mut value = agg.value.as_ref().map(|v| self.fragment(v)).unwrap_or_default();
+        if agg.aggregation == Aggregation::Sum {
+            value = self.snippet("sum_input", context! { expr => value })?;
+        }
         let f = self.caps.filter_clause;
         let count = match cond {
             None => "count(*)".to_string(),
@@ -368,7 +375,7 @@ impl Dialect {
                 Some(c) => format!("{func}({d}CASE WHEN {c} THEN {value} END)"),
             }
         };
-        match agg.aggregation {
+        Ok(match agg.aggregation {
             Aggregation::Count => count,
             Aggregation::Sum => over("sum", false),
             Aggregation::Distinct => over("count", true),
@@ -376,7 +383,7 @@ impl Dialect {
             Aggregation::Max => over("max", false),
             Aggregation::Any => format!("CASE WHEN {count} > 0 THEN 1 ELSE 0 END"),
             Aggregation::AtLeast(n) => format!("CASE WHEN {count} >= {n} THEN 1 ELSE 0 END"),
-        }
+        })
     }
 
     /// The aggregate of `agg` in `scan`; `windowed`: only events inside the window relative to
@@ -401,7 +408,7 @@ impl Dialect {
             conds.push(format!("({})", self.fragment(f)));
         }
         let cond = conds.join(" AND ");
-        Ok(self.aggregate(agg, (!conds.is_empty()).then_some(cond.as_str())))
+        self.aggregate(agg, (!conds.is_empty()).then_some(cond.as_str()))
     }
 
     /// Renders the readout query of one experiment.
