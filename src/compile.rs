@@ -48,6 +48,11 @@ fn validated(sql: String, dialect: &Dialect, what: &str) -> Result<String> {
     Ok(sql)
 }
 
+/// Renders and validates a population-totals query (see `plan::plan_totals`).
+pub fn compile_totals(plan: &plan::TotalsPlan, dialect: &Dialect) -> Result<String> {
+    validated(dialect.render_totals(plan)?, dialect, "totals SQL")
+}
+
 /// Plans, renders and validates a report query (see `plan::plan_report`).
 pub fn compile_report(plan: &plan::ReportPlan, dialect: &Dialect) -> Result<String> {
     validated(dialect.render_report(plan)?, dialect, "report SQL")

@@ -10,7 +10,7 @@
 use crate::diagnostics::{Diagnostic, did_you_mean};
 use crate::error::{Error, Result};
 use crate::execute::{self, Engine, NamedRow};
-use crate::ir::{self, Catalog, ExperimentId, ExposureLogId, MetricId, SegmentId};
+use crate::ir::{Catalog, ExperimentId, ExposureLogId, MetricId, SegmentId};
 use crate::plan::{ExperimentPlan, ReportPlan};
 use crate::render::Dialect;
 use crate::source::SourceMap;
@@ -309,9 +309,9 @@ impl Context {
         Ok(crate::stats::readout::build(&spec, &table))
     }
 
-    /// Whole-population impact: daily totals of the experiment's count and sum metrics over
-    /// the whole population in the experiment's period, from the report query of the same
-    /// metrics (only additive per-unit values have a meaningful population total).
+    /// Whole-population impact: the totals of the experiment's count and sum metrics over the
+    /// whole population in the experiment's period (one cheap aggregate per event table, no
+    /// grouping by unit), per day, beside the effect per unit times the triggered units per day.
     fn add_population_impact(
         &self,
         catalog: &Catalog,
@@ -321,38 +321,37 @@ impl Context {
         readout: &mut Readout,
     ) -> Result<()> {
         let exp = &catalog.experiments[experiment];
-        let metric_ids: Vec<MetricId> = exp
-            .metrics
-            .iter()
-            .map(|(m, _)| *m)
-            .filter(|m| {
-                matches!(
-                    catalog.metrics[*m].kind,
-                    ir::MetricKind::Events {
-                        aggregation: ir::Aggregation::Count | ir::Aggregation::Sum,
-                        ..
-                    }
-                )
-            })
-            .collect();
-        if metric_ids.is_empty() {
+        let metric_ids: Vec<MetricId> = exp.metrics.iter().map(|(m, _)| *m).collect();
+        let plan = crate::plan::plan_totals(catalog, &metric_ids, exp.start, exp.end);
+        if plan.metrics.is_empty() {
             return Ok(());
         }
-        let plan = crate::plan::plan_report(
-            catalog,
-            &metric_ids,
-            crate::time::Grain::Day,
-            exp.start,
-            exp.end,
-            None,
-            None,
-        );
         let days = (exp.end.0 - exp.start.0) as f64 / 86_400.0;
-        let sql = compile::compile_report(&plan, dialect)?;
-        let rows = crate::report::assemble(&plan, &self.query(&sql)?)?;
+        let sql = compile::compile_totals(&plan, dialect)?;
+        let rows = self.query(&sql)?;
+        let [row] = rows.as_slice() else {
+            return Err(Error::data(format!(
+                "the totals query returned {} rows, not 1",
+                rows.len()
+            )));
+        };
+        let row: BTreeMap<String, execute::Cell> = row
+            .iter()
+            .map(|(k, v)| (k.to_ascii_lowercase(), v.clone()))
+            .collect();
         let mut population = BTreeMap::new();
-        for r in &rows {
-            *population.entry(r.metric.clone()).or_insert(0.0) += r.total.unwrap_or(0.0) / days;
+        for (metric, _, column) in &plan.metrics {
+            let total = match row.get(&column.to_ascii_lowercase()) {
+                Some(execute::Cell::Number(x)) => *x,
+                // No event in the period: the total is zero.
+                Some(execute::Cell::Null) => 0.0,
+                _ => {
+                    return Err(Error::data(format!(
+                        "the total of `{metric}` is missing or not a number"
+                    )));
+                }
+            };
+            population.insert(metric.clone(), total / days);
         }
         let triggered = table
             .rows

@@ -39,6 +39,8 @@ pub mod time;
 pub mod validate;
 pub mod workspace;
 
-pub use compile::{ReadoutOptions, compile_experiment, compile_plan, compile_report, readout_spec};
+pub use compile::{
+    ReadoutOptions, compile_experiment, compile_plan, compile_report, compile_totals, readout_spec,
+};
 pub use context::Context;
 pub use error::{Error, ErrorKind, Result};

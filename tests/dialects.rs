@@ -195,3 +195,25 @@ fn demo_fingerprints_are_pinned() {
     assert_ne!(fp("care_guide_banner", &[0]).0, fp("care_guide_banner", &[]).0);
     insta::assert_snapshot!("demo_one_page_checkout_canonical_text", text);
 }
+
+/// The population-totals query (whole-population impact) in every dialect: re-parsed by
+/// `compile_totals`, generic snapshotted.
+#[test]
+fn population_totals_compile_in_every_dialect() {
+    let mut sources = SourceMap::new();
+    let (raw, _) = load_catalog_texts(&[("plant_shop.yaml", plumb::demo::CATALOG[0].1)], &mut sources);
+    let catalog = plumb::resolve::resolve(&sources, &raw).unwrap();
+    let exp = &catalog.experiments[0];
+    let metrics: Vec<usize> = exp.metrics.iter().map(|(m, _)| *m).collect();
+    let plan = plumb::plan::plan_totals(&catalog, &metrics, exp.start, exp.end);
+    // count and sum metrics only: orders, revenue, page_views, refunds.
+    let names: Vec<&str> = plan.metrics.iter().map(|m| m.0.as_str()).collect();
+    assert_eq!(names, ["orders", "revenue", "page_views", "refunds"]);
+    for name in std::iter::once("generic").chain(builtin_dialects()) {
+        let dialect = Dialect::load(name, None).unwrap();
+        let sql = plumb::compile_totals(&plan, &dialect).unwrap_or_else(|e| panic!("{name}: {e}"));
+        if name == "generic" {
+            insta::assert_snapshot!("demo_totals_generic", sql);
+        }
+    }
+}

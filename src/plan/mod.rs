@@ -726,6 +726,58 @@ fn report_column(catalog: &Catalog, plan: &mut ReportPlan, metric: ir::MetricId)
     scan
 }
 
+/// Whole-population totals of count and sum metrics over `[from, to)`: the denominator of
+/// whole-population impact. One pass per event table, no grouping by unit: every metric of a
+/// table is one conditional aggregate over its rows (metric windows do not apply: the
+/// population is every unit, in calendar time, as in a report without `--exposed-in`).
+#[derive(Debug, Clone)]
+pub struct TotalsPlan {
+    pub scans: Vec<EventScan>,
+    /// `(metric name, scan index, column)` in request order.
+    pub metrics: Vec<(String, usize, String)>,
+    pub from: Timestamp,
+    pub to: Timestamp,
+}
+
+/// Plans the totals of `metrics`; metrics other than count and sum are left out (their
+/// per-unit values do not add up to a population total).
+pub fn plan_totals(
+    catalog: &Catalog,
+    metrics: &[ir::MetricId],
+    from: Timestamp,
+    to: Timestamp,
+) -> TotalsPlan {
+    let mut report = ReportPlan {
+        metrics: Vec::new(),
+        scans: Vec::new(),
+        grain: crate::time::Grain::Day,
+        from,
+        to,
+        exposed: None,
+        segment: None,
+    };
+    let mut out = Vec::new();
+    for &id in metrics {
+        let m = &catalog.metrics[id];
+        if matches!(
+            m.kind,
+            MetricKind::Events {
+                aggregation: Aggregation::Count | Aggregation::Sum,
+                ..
+            }
+        ) {
+            let scan = report_column(catalog, &mut report, id);
+            out.push((m.name.clone(), scan, columns::metric(&m.name)));
+        }
+    }
+    TotalsPlan {
+        scans: report.scans,
+        metrics: out,
+        from,
+        to,
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -14,7 +14,9 @@
 use crate::columns;
 use crate::error::{Error, Result};
 use crate::ir::{Aggregation, Cap, Source};
-use crate::plan::{Aggregate, EventScan, ExperimentPlan, PlannedSegmentKind, ReportMetricKind, ReportPlan};
+use crate::plan::{
+    Aggregate, EventScan, ExperimentPlan, PlannedSegmentKind, ReportMetricKind, ReportPlan, TotalsPlan,
+};
 use crate::time::Timestamp;
 use minijinja::{Environment, UndefinedBehavior, context};
 use serde::{Deserialize, Serialize};
@@ -44,6 +46,11 @@ const BUILTIN: &[(&str, &str, &str)] = &[
         "generic",
         "report.sql.j2",
         include_str!("../../dialects/generic/report.sql.j2"),
+    ),
+    (
+        "generic",
+        "totals.sql.j2",
+        include_str!("../../dialects/generic/totals.sql.j2"),
     ),
     (
         "duckdb",
@@ -83,7 +90,12 @@ const BUILTIN: &[(&str, &str, &str)] = &[
 ];
 
 /// Templates a dialect consists of; each falls back to the generic one.
-const TEMPLATES: &[&str] = &["experiment.sql.j2", "exposures.sql.j2", "report.sql.j2"];
+const TEMPLATES: &[&str] = &[
+    "experiment.sql.j2",
+    "exposures.sql.j2",
+    "report.sql.j2",
+    "totals.sql.j2",
+];
 
 /// Names of the built-in target dialects (the generic baseline excluded).
 pub fn builtin_dialects() -> Vec<&'static str> {
@@ -623,6 +635,47 @@ impl Dialect {
             rows => rows,
         };
         self.render_template("report.sql.j2", ctx)
+    }
+
+    /// Renders a population-totals query (one row, one column per metric).
+    pub fn render_totals(&self, plan: &TotalsPlan) -> Result<String> {
+        let mut scans = Vec::new();
+        for scan in &plan.scans {
+            let mut aggregates = Vec::new();
+            for agg in &scan.aggregates {
+                aggregates.push(context! {
+                    sql => self.scan_aggregate(scan, agg, false)?,
+                    column => self.ident(&agg.column),
+                });
+            }
+            scans.push(context! {
+                name => scan.name,
+                source => self.source(&scan.source),
+                time => self.ident(&scan.time),
+                filter => scan.filter.as_ref().map(|f| self.fragment(f)),
+                aggregates => aggregates,
+            });
+        }
+        let rows: Vec<minijinja::Value> = plan
+            .metrics
+            .iter()
+            .map(|(_, scan, column)| {
+                context! {
+                    scan => plan.scans[*scan].name.clone(),
+                    column => self.ident(column),
+                }
+            })
+            .collect();
+        let ctx = context! {
+            metric_names => plan.metrics.iter().map(|m| m.0.as_str()).collect::<Vec<_>>().join(", "),
+            dialect => self.caps.name,
+            float_type => self.caps.float_type,
+            from => self.timestamp(plan.from)?,
+            to => self.timestamp(plan.to)?,
+            scans => scans,
+            rows => rows,
+        };
+        self.render_template("totals.sql.j2", ctx)
     }
 
     /// Template context of the exposure log part shared by readout and report queries.
