@@ -1,11 +1,19 @@
-//! Readout speed on generated data: plumb's compiled DuckDB query against the best single-pass
-//! query written by hand for the same numbers, and against one join per metric.
+//! Readout speed on generated data, end to end as a user runs it: `plumb analyze` (the binary,
+//! on files: start-up, catalog, compile, the readout and population-totals queries, statistics,
+//! JSON) against the best single-pass query written by hand for the same numbers, and against
+//! one join per metric, each on the same files with the same number of DuckDB threads. The
+//! numbers of all three are asserted equal.
 //!
-//! Run: `cargo run --release --example bench_readout` (defaults: 1,000,000 units,
-//! 20,000,000 events on 2 tables, 20 metrics; `-- --units N --events N` to change).
-//! Data lives in a temporary DuckDB file (native tables, string unit keys).
+//! Run: `cargo build --release && cargo run --release --example bench_readout`
+//! Defaults: 1,000,000 units, 1,050,000 exposure rows, 20,000,000 events on 2 tables,
+//! 20 metrics, no covariates, 2 threads, data as Parquet files and as a DuckDB file.
+//! Options: `--units N --events N --threads N --runs N --memory-limit 4GB --formats
+//! parquet,duckdb --skip-join --dir DIR` (`--skip-join` for large runs, where one join per
+//! metric is slow; `--dir` keeps the generated data there and reuses it).
 
 use duckdb::Connection;
+use std::path::{Path, PathBuf};
+use std::process::Command;
 use std::time::{Duration, Instant};
 
 const START: &str = "2026-03-01 00:00:00";
@@ -51,13 +59,16 @@ const METRICS: &[MetricDef] = &[
     ("week_dwell", "visits", "sum", "seconds", "", Some(7)),
 ];
 
-fn arg(name: &str, default: u64) -> u64 {
+fn arg_text(name: &str) -> Option<String> {
     let args: Vec<String> = std::env::args().collect();
     args.iter()
         .position(|a| a == name)
         .and_then(|i| args.get(i + 1))
-        .and_then(|v| v.parse().ok())
-        .unwrap_or(default)
+        .cloned()
+}
+
+fn arg(name: &str, default: u64) -> u64 {
+    arg_text(name).and_then(|v| v.parse().ok()).unwrap_or(default)
 }
 
 fn catalog() -> String {
@@ -196,8 +207,9 @@ fn join_per_metric() -> String {
     s + &final_select(&names)
 }
 
-fn time_query(conn: &Connection, sql: &str, runs: usize) -> (Duration, Vec<Vec<f64>>) {
-    let mut best = Duration::MAX;
+/// Per arm, the mean of every metric (in METRICS order), from a hand-written query.
+fn time_query(conn: &Connection, sql: &str, runs: usize) -> (Duration, Vec<(String, Vec<f64>)>) {
+    let mut times = Vec::new();
     let mut rows = Vec::new();
     for _ in 0..runs {
         let t = Instant::now();
@@ -206,30 +218,101 @@ fn time_query(conn: &Connection, sql: &str, runs: usize) -> (Duration, Vec<Vec<f
         let names: Vec<String> = result.as_ref().unwrap().column_names();
         rows.clear();
         while let Some(row) = result.next().unwrap() {
+            let arm: String = row.get(0).unwrap();
             let mut v = Vec::new();
             for (i, n) in names.iter().enumerate() {
                 if n.ends_with("__mean") {
                     v.push(row.get::<_, Option<f64>>(i).unwrap().unwrap_or(f64::NAN));
                 }
             }
-            rows.push(v);
+            rows.push((arm, v));
         }
-        best = best.min(t.elapsed());
+        times.push(t.elapsed());
     }
-    (best, rows)
+    (median(times), rows)
 }
 
-fn main() {
-    let units = arg("--units", 1_000_000);
-    let events = arg("--events", 20_000_000);
-    let dir = tempfile::tempdir().expect("temp dir");
-    let conn = Connection::open(dir.path().join("bench.duckdb")).expect("duckdb");
-    let t = Instant::now();
+fn median(mut times: Vec<Duration>) -> Duration {
+    times.sort();
+    times[times.len() / 2]
+}
+
+/// `plumb analyze bench --format json` in `ws`, as a user runs it; per arm the metric means.
+fn time_plumb(plumb: &Path, ws: &Path, runs: usize) -> (Duration, Vec<(String, Vec<f64>)>) {
+    let mut times = Vec::new();
+    let mut json = serde_json::Value::Null;
+    for _ in 0..runs {
+        let t = Instant::now();
+        let out = Command::new(plumb)
+            .args(["--workspace"])
+            .arg(ws)
+            .args(["analyze", "bench", "--format", "json"])
+            .output()
+            .expect("run plumb");
+        times.push(t.elapsed());
+        assert!(
+            out.status.code() == Some(0) || out.status.code() == Some(3),
+            "plumb failed: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        json = serde_json::from_slice(&out.stdout).expect("plumb JSON");
+    }
+    let overall = |metric: &str| {
+        json["results"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|r| r["metric"] == metric && r["segment"].is_null())
+            .unwrap_or_else(|| panic!("no row for {metric}"))
+            .clone()
+    };
+    let mean = |v: &serde_json::Value| v.as_f64().unwrap_or(f64::NAN);
+    let control: Vec<f64> = METRICS
+        .iter()
+        .map(|m| mean(&overall(m.0)["control"]["mean"]))
+        .collect();
+    let treatment: Vec<f64> = METRICS
+        .iter()
+        .map(|m| mean(&overall(m.0)["treatment"]["mean"]))
+        .collect();
+    (
+        median(times),
+        vec![("control".into(), control), ("treatment".into(), treatment)],
+    )
+}
+
+fn same(label: &str, a: &[(String, Vec<f64>)], b: &[(String, Vec<f64>)]) {
+    assert_eq!(a.len(), b.len(), "{label}: arms");
+    for ((arm_a, x), (arm_b, y)) in a.iter().zip(b) {
+        assert_eq!(arm_a, arm_b, "{label}: arm order");
+        for (i, (x, y)) in x.iter().zip(y).enumerate() {
+            assert!(
+                (x - y).abs() <= 1e-9 * y.abs().max(1.0),
+                "{label}: {} in {arm_a}: {x} vs {y}",
+                METRICS[i].0
+            );
+        }
+    }
+}
+
+/// Generates the workload into `dir` as Parquet files and a DuckDB file.
+fn generate(dir: &Path, units: u64, events: u64) {
+    let conn = Connection::open_in_memory().expect("duckdb");
+    let half = events / 2;
+    // 5% of units are exposed again an hour later: most in the same arm, one in fifty in the
+    // other arm (0.1% of units, excluded as exposed to several arms).
+    let again = units / 20;
     conn.execute_batch(&format!(
-        "CREATE TABLE exposures AS SELECT 'u' || lpad(CAST(i AS VARCHAR), 8, '0') AS unit_id, 'exp' AS experiment,
+        "CREATE TABLE exposures AS
+         SELECT 'u' || lpad(CAST(i AS VARCHAR), 8, '0') AS unit_id, 'exp' AS experiment,
             CASE WHEN hash(i) % 2 = 0 THEN 'control' ELSE 'treatment' END AS arm,
             TIMESTAMP '{START}' + to_seconds(CAST(hash(i * 7) % (14 * 86400) AS BIGINT)) AS exposed_at
-         FROM range({units}) t(i);
+         FROM range({units}) t(i)
+         UNION ALL
+         SELECT 'u' || lpad(CAST(i * 20 AS VARCHAR), 8, '0'), 'exp',
+            CASE WHEN (hash(i * 20) % 2 = 0) = (i % 50 <> 0) THEN 'control' ELSE 'treatment' END,
+            TIMESTAMP '{START}' + to_seconds(CAST(hash(i * 7) % (14 * 86400) AS BIGINT) + 3600)
+         FROM range({again}) t(i);
          CREATE TABLE orders AS SELECT 'u' || lpad(CAST(hash(i) % {units} AS VARCHAR), 8, '0') AS unit_id,
             TIMESTAMP '2026-02-01 00:00:00' + to_seconds(CAST(hash(i * 3) % (50 * 86400) AS BIGINT)) AS at,
             CASE WHEN hash(i * 5) % 10 = 0 THEN 'refunded' ELSE 'paid' END AS status,
@@ -239,53 +322,128 @@ fn main() {
             TIMESTAMP '2026-02-01 00:00:00' + to_seconds(CAST(hash(i * 13) % (50 * 86400) AS BIGINT)) AS at,
             ['home', 'care', 'cart', 'pots'][CAST(hash(i * 17) % 4 AS INTEGER) + 1] AS page,
             CAST(hash(i * 19) % 300 AS INTEGER) AS seconds
-         FROM range({half}) t(i);
-         CHECKPOINT;",
-        half = events / 2
+         FROM range({half}) t(i);"
     ))
     .expect("generate data");
-    println!(
-        "generated {units} units and {events} events in {:.1}s",
-        t.elapsed().as_secs_f64()
-    );
-    println!(
-        "threads: {}",
-        std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1)
-    );
-
-    let text = catalog();
-    let mut sources = plumb::source::SourceMap::new();
-    let (raw, _) = plumb::load::load_catalog_texts(&[("bench.yaml", &text)], &mut sources);
-    let ir = plumb::resolve::resolve(&sources, &raw).expect("catalog");
-    let dialect = plumb::render::Dialect::load("duckdb", None).unwrap();
-    let (_, plumb_sql) = plumb::compile_experiment(&ir, 0, &[], &dialect).expect("compile");
-
-    let (t_plumb, r_plumb) = time_query(&conn, &plumb_sql, 2);
-    let (t_hand, r_hand) = time_query(&conn, &hand_single_pass(), 2);
-    for (a, b) in r_plumb.iter().zip(&r_hand) {
-        for (x, y) in a.iter().zip(b) {
-            assert!((x - y).abs() <= 1e-9 * y.abs().max(1.0), "plumb {x} vs hand {y}");
-        }
+    let mut copy = String::new();
+    for t in ["exposures", "orders", "visits"] {
+        copy += &format!(
+            "COPY {t} TO '{}' (FORMAT parquet);\n",
+            dir.join(format!("{t}.parquet")).display()
+        );
     }
-    println!("plumb readout query:       {:>7.2}s", t_plumb.as_secs_f64());
+    copy += &format!("ATTACH '{}' AS f;\n", dir.join("bench.duckdb").display());
+    for t in ["exposures", "orders", "visits"] {
+        copy += &format!("CREATE TABLE f.{t} AS SELECT * FROM {t};\n");
+    }
+    copy += "DETACH f;";
+    conn.execute_batch(&copy).expect("write files");
+}
+
+fn workspace(dir: &Path, name: &str, local: &str) -> PathBuf {
+    let ws = dir.join(name);
+    std::fs::create_dir_all(ws.join("metrics")).unwrap();
+    std::fs::write(
+        ws.join("plumb.yaml"),
+        format!("catalog: metrics\nlocal:\n{local}"),
+    )
+    .unwrap();
+    std::fs::write(ws.join("metrics/bench.yaml"), catalog()).unwrap();
+    ws
+}
+
+fn main() {
+    let units = arg("--units", 1_000_000);
+    let events = arg("--events", 20_000_000);
+    let threads = arg("--threads", 2);
+    let runs = arg("--runs", 3) as usize;
+    let memory_limit = arg_text("--memory-limit");
+    let formats = arg_text("--formats").unwrap_or_else(|| "parquet,duckdb".into());
+    let skip_join = std::env::args().any(|a| a == "--skip-join");
+    let plumb = std::env::current_exe()
+        .ok()
+        .and_then(|p| Some(p.parent()?.parent()?.join("plumb")))
+        .filter(|p| p.is_file())
+        .expect("the plumb binary is not built: run `cargo build --release` first");
+    // `--dir DIR` keeps the data (and reuses it when it is there), for profiling.
+    let tmp = tempfile::tempdir().expect("temp dir");
+    let dir_path = arg_text("--dir").map(PathBuf::from);
+    let dir = dir_path.as_deref().unwrap_or(tmp.path());
+    std::fs::create_dir_all(dir).unwrap();
+    let t = Instant::now();
+    if !dir.join("bench.duckdb").is_file() {
+        generate(dir, units, events);
+    }
     println!(
-        "hand-written single pass:  {:>7.2}s  (plumb / hand = {:.2})",
-        t_hand.as_secs_f64(),
-        t_plumb.as_secs_f64() / t_hand.as_secs_f64()
+        "generated {units} units, {} exposure rows and {events} events in {:.1}s; DuckDB threads for every query: {threads}{}",
+        units + units / 20,
+        t.elapsed().as_secs_f64(),
+        memory_limit
+            .as_ref()
+            .map(|m| format!(", memory limit {m}"))
+            .unwrap_or_default()
     );
-    let (t_join, r_join) = time_query(&conn, &join_per_metric(), 1);
-    for (a, b) in r_join.iter().zip(&r_hand) {
-        for (x, y) in a.iter().zip(b) {
-            assert!(
-                (x - y).abs() <= 1e-9 * y.abs().max(1.0),
-                "join-per-metric {x} vs hand {y}"
+    let mut settings = format!("  threads: {threads}\n");
+    if let Some(m) = &memory_limit {
+        settings += &format!("  memory_limit: {m}\n");
+    }
+    for format in formats.split(',') {
+        let data = dir.display().to_string();
+        let (ws, conn) = match format {
+            "parquet" => {
+                let tables: String = ["exposures", "orders", "visits"]
+                    .iter()
+                    .map(|t| format!("    {t}: {data}/{t}.parquet\n"))
+                    .collect();
+                let ws = workspace(dir, "ws_parquet", &format!("  tables:\n{tables}{settings}"));
+                let conn = Connection::open_in_memory().unwrap();
+                for t in ["exposures", "orders", "visits"] {
+                    conn.execute_batch(&format!(
+                        "CREATE VIEW {t} AS SELECT * FROM read_parquet('{data}/{t}.parquet')"
+                    ))
+                    .unwrap();
+                }
+                (ws, conn)
+            }
+            "duckdb" => {
+                let ws = workspace(
+                    dir,
+                    "ws_duckdb",
+                    &format!("  database: {data}/bench.duckdb\n{settings}"),
+                );
+                let conn = Connection::open_in_memory().unwrap();
+                conn.execute_batch(&format!("ATTACH '{data}/bench.duckdb' AS f (READ_ONLY); USE f"))
+                    .unwrap();
+                (ws, conn)
+            }
+            other => panic!("unknown format {other}"),
+        };
+        conn.execute_batch(&format!("SET threads = {threads}")).unwrap();
+        if let Some(m) = &memory_limit {
+            conn.execute_batch(&format!("SET memory_limit = '{m}'")).unwrap();
+        }
+        println!("\n{format}:");
+        let (t_plumb, r_plumb) = time_plumb(&plumb, &ws, runs);
+        let (t_hand, r_hand) = time_query(&conn, &hand_single_pass(), runs);
+        same("plumb vs hand-written", &r_plumb, &r_hand);
+        println!(
+            "  plumb analyze (end to end): {:>7.2}s  (median of {runs})",
+            t_plumb.as_secs_f64()
+        );
+        println!(
+            "  hand-written single pass:   {:>7.2}s  (plumb / hand = {:.2})",
+            t_hand.as_secs_f64(),
+            t_plumb.as_secs_f64() / t_hand.as_secs_f64()
+        );
+        if !skip_join {
+            let (t_join, r_join) = time_query(&conn, &join_per_metric(), 1);
+            same("join-per-metric vs hand-written", &r_join, &r_hand);
+            println!(
+                "  one join per metric:        {:>7.2}s  (join / plumb = {:.1})",
+                t_join.as_secs_f64(),
+                t_join.as_secs_f64() / t_plumb.as_secs_f64()
             );
         }
+        println!("  same numbers (metric means per arm, 1e-9): yes");
     }
-    println!(
-        "one join per metric:       {:>7.2}s  (join / plumb = {:.1})",
-        t_join.as_secs_f64(),
-        t_join.as_secs_f64() / t_plumb.as_secs_f64()
-    );
-    println!("same numbers from all three queries: yes");
 }

@@ -255,11 +255,20 @@ impl Context {
 
     /// Runs `sql` on the context's engine, opening it on first use.
     pub fn query(&self, sql: &str) -> Result<Vec<NamedRow>> {
+        self.with_engine(|e| e.query(sql))
+    }
+
+    /// Runs the readout statement of `plan` (see [`Engine::readout`]).
+    pub fn query_readout(&self, plan: &ExperimentPlan, sql: &str) -> Result<Vec<NamedRow>> {
+        self.with_engine(|e| e.readout(plan, sql))
+    }
+
+    fn with_engine<T>(&self, f: impl FnOnce(&mut dyn Engine) -> Result<T>) -> Result<T> {
         let mut slot = self.engine.borrow_mut();
         if slot.is_none() {
             *slot = Some(open_engine(&self.choice, &self.workspace)?);
         }
-        slot.as_mut().expect("opened above").query(sql)
+        f(slot.as_mut().expect("opened above").as_mut())
     }
 
     /// The readout of `experiment` computed on the context's engine.
@@ -284,7 +293,7 @@ impl Context {
     ) -> Result<Readout> {
         let dialect = self.engine_dialect()?;
         let (plan, sql) = compile::compile_experiment(catalog, experiment, by, &dialect)?;
-        let table = execute::stats_table(&plan, &self.query(&sql)?)?;
+        let table = execute::stats_table(&plan, &self.query_readout(&plan, &sql)?)?;
         let spec = compile::readout_spec(catalog, experiment, &plan, options);
         let mut readout = crate::stats::readout::build(&spec, &table);
         if options.population_impact {
@@ -381,7 +390,7 @@ impl Context {
     ) -> Result<History> {
         let plan = crate::plan::plan_history(self.catalog(), metric, log, start, end);
         let sql = compile::compile_plan(&plan, &*self.engine_dialect()?)?;
-        let table = execute::stats_table(&plan, &self.query(&sql)?)?;
+        let table = execute::stats_table(&plan, &self.query_readout(&plan, &sql)?)?;
         let row = table
             .rows
             .iter()

@@ -386,9 +386,34 @@ fn run_every_kind(users: usize) -> (StatsTable, plumb::plan::ExperimentPlan, Dat
         .iter()
         .map(|t| (t.to_string(), dir.path().join(format!("{t}.csv"))))
         .collect();
-    let engine = LocalEngine::open(None, &tables).unwrap();
-    let rows = engine.query(&sql).unwrap();
-    (plumb::execute::stats_table(&plan, &rows).unwrap(), plan, data)
+    let mut engine = LocalEngine::open(None, &tables).unwrap();
+    // The readout path (`plumb analyze`): per-unit stage in SQL, final aggregation in Rust.
+    let rows = plumb::execute::Engine::readout(&mut engine, &plan, &sql).unwrap();
+    let table = plumb::execute::stats_table(&plan, &rows).unwrap();
+    // The statement's own final SELECT gives the same statistics (what a warehouse computes).
+    let sql_table = plumb::execute::stats_table(&plan, &engine.query(&sql).unwrap()).unwrap();
+    assert_eq!(table.rows.len(), sql_table.rows.len());
+    for (a, b) in table.rows.iter().zip(&sql_table.rows) {
+        assert_eq!((&a.arm, &a.segment, a.units), (&b.arm, &b.segment, b.units));
+        for (k, m) in &a.columns {
+            let o = b.columns[k];
+            assert_eq!(m.n, o.n, "{k}");
+            let close =
+                |x: f64, y: f64| (x - y).abs() <= 1e-12 * y.abs().max(1.0) || (x.is_nan() && y.is_nan());
+            assert!(
+                close(m.mean, o.mean) && close(m.var, o.var),
+                "{k}: {m:?} vs {o:?}"
+            );
+        }
+        for (k, c) in &a.covariances {
+            let o = b.covariances[k];
+            assert!(
+                (c - o).abs() <= 1e-12 * o.abs().max(1.0) || (c.is_nan() && o.is_nan()),
+                "{k}: {c} vs {o}"
+            );
+        }
+    }
+    (table, plan, data)
 }
 
 #[test]
@@ -580,8 +605,12 @@ fn timestamps_with_and_without_zone_give_the_same_numbers() {
             ("ex".to_string(), dir.path().join("ex.csv")),
             ("ev".to_string(), dir.path().join("ev.csv")),
         ];
-        let engine = LocalEngine::open(None, &tables).unwrap();
-        plumb::execute::stats_table(&plan, &engine.query(&sql).unwrap()).unwrap()
+        let mut engine = LocalEngine::open(None, &tables).unwrap();
+        plumb::execute::stats_table(
+            &plan,
+            &plumb::execute::Engine::readout(&mut engine, &plan, &sql).unwrap(),
+        )
+        .unwrap()
     };
     let utc = run("", 0);
     let zoned = run("+02:00", 2 * H);
@@ -661,10 +690,24 @@ fn nist_variance_numerics_through_duckdb() {
             ("ex".to_string(), dir.path().join("ex.csv")),
             ("ev".to_string(), dir.path().join("ev.csv")),
         ];
-        let engine = LocalEngine::open(None, &tables).unwrap();
-        let table = plumb::execute::stats_table(&plan, &engine.query(&sql).unwrap()).unwrap();
-        let a = table.rows.iter().find(|r| r.arm == "a").unwrap().columns["y"];
-        assert!(((a.mean - mean) / mean).abs() < 1e-14, "{file} mean {}", a.mean);
-        assert!(((a.sd() - sd) / sd).abs() < tol, "{file} sd {} vs {sd}", a.sd());
+        let mut engine = LocalEngine::open(None, &tables).unwrap();
+        // Both local paths: the readout's (order-independent aggregation in Rust, what
+        // `plumb analyze` runs) and the statement's own SQL (DuckDB's var_samp).
+        let readout = plumb::execute::Engine::readout(&mut engine, &plan, &sql).unwrap();
+        let sql_rows = engine.query(&sql).unwrap();
+        for (path, rows) in [("readout", readout), ("sql", sql_rows)] {
+            let table = plumb::execute::stats_table(&plan, &rows).unwrap();
+            let a = table.rows.iter().find(|r| r.arm == "a").unwrap().columns["y"];
+            assert!(
+                ((a.mean - mean) / mean).abs() < 1e-14,
+                "{file} ({path}) mean {}",
+                a.mean
+            );
+            assert!(
+                ((a.sd() - sd) / sd).abs() < tol,
+                "{file} ({path}) sd {} vs {sd}",
+                a.sd()
+            );
+        }
     }
 }

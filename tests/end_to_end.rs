@@ -339,16 +339,22 @@ fn statistics_table_hand_off_gives_the_same_readout() {
         plumb::workspace::Opened::Ok(ws, _) => ws,
         plumb::workspace::Opened::Invalid(_) => panic!("demo catalog invalid"),
     };
-    let engine = LocalEngine::open(None, &ws.local_tables).unwrap();
+    let mut engine = LocalEngine::open(None, &ws.local_tables).unwrap();
     let id = ws.catalog.experiment("one_page_checkout").unwrap();
     let mut tables = Vec::new();
     for dialect in ["duckdb", "postgres", "generic"] {
         let d = plumb::render::Dialect::load(dialect, None).unwrap();
         let (plan, sql) = plumb::compile_experiment(&ws.catalog, id, &[], &d).unwrap();
-        let rows = engine.query(&sql).unwrap();
-        if dialect == "duckdb" {
+        // DuckDB: the local engine's own path (final aggregation in Rust, order-independent),
+        // exactly what `plumb analyze` runs; the others: the statement's SQL as a warehouse
+        // runs it (var_samp, covar_samp), compared below to 1e-9.
+        let rows = if dialect == "duckdb" {
+            let rows = plumb::execute::Engine::readout(&mut engine, &plan, &sql).unwrap();
             std::fs::write(dir.path().join("stats.csv"), csv_of(&rows)).unwrap();
-        }
+            rows
+        } else {
+            engine.query(&sql).unwrap()
+        };
         tables.push(plumb::execute::stats_table(&plan, &rows).unwrap());
     }
     for t in &tables[1..] {

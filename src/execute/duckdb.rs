@@ -190,7 +190,7 @@ impl LocalEngine {
     /// aggregation over CTEs (see [`staged`]), so the result is the same whatever the number
     /// of threads.
     pub fn query(&self, sql: &str) -> Result<Vec<NamedRow>> {
-        let Some(plan) = staged::stage(sql) else {
+        let Some(plan) = staged::stage(sql, true) else {
             return self.run(sql);
         };
         let result = self.run_staged(&plan);
@@ -198,7 +198,7 @@ impl LocalEngine {
         let drops: String = plan
             .tables
             .iter()
-            .map(|(t, _)| format!("DROP TABLE IF EXISTS {t}; "))
+            .map(|t| format!("DROP TABLE IF EXISTS {}; ", t.table))
             .collect();
         let cleanup = self
             .conn
@@ -210,9 +210,9 @@ impl LocalEngine {
     }
 
     fn run_staged(&self, plan: &staged::Staged) -> Result<Vec<NamedRow>> {
-        for (_, create) in &plan.tables {
+        for t in &plan.tables {
             self.conn
-                .execute_batch(create)
+                .execute_batch(&t.create)
                 .map_err(|e| err("running the query (per-unit stage)", e))?;
         }
         self.conn
@@ -269,7 +269,250 @@ impl LocalEngine {
     }
 }
 
+/// The readout's final aggregation, computed from the streamed per-unit rows with
+/// order-independent sums: rows in the layout and order of the template's final SELECT.
+mod readout {
+    use super::{Cell, LocalEngine, NamedRow, err, ident};
+    use crate::columns::{self, Stat};
+    use crate::error::{Error, Result};
+    use crate::execute::arm_stats::{self, Column};
+    use crate::plan::ExperimentPlan;
+    use duckdb::arrow::array::{Array, Float64Array, StringArray};
+    use duckdb::arrow::datatypes::DataType;
+    use std::collections::{BTreeMap, HashMap};
+
+    /// Text values as small integer ids (arms, segment values), in order of appearance.
+    #[derive(Default)]
+    struct Ids {
+        names: Vec<Option<String>>,
+        index: HashMap<Option<String>, u32>,
+    }
+
+    impl Ids {
+        fn id(&mut self, v: Option<&str>) -> u32 {
+            if let Some(&i) = self.index.get(&v.map(str::to_string)) {
+                return i;
+            }
+            let i = self.names.len() as u32;
+            self.names.push(v.map(str::to_string));
+            self.index.insert(v.map(str::to_string), i);
+            i
+        }
+    }
+
+    fn text(a: &dyn Array) -> Result<StringArray> {
+        let a = duckdb::arrow::compute::cast(&a.slice(0, a.len()), &DataType::Utf8)
+            .map_err(|e| Error::bug(format!("per-unit text column: {e}")))?;
+        a.as_any()
+            .downcast_ref::<StringArray>()
+            .cloned()
+            .ok_or_else(|| Error::bug("per-unit text column is not text"))
+    }
+
+    fn doubles(a: &dyn Array) -> Result<&Float64Array> {
+        a.as_any()
+            .downcast_ref::<Float64Array>()
+            .ok_or_else(|| Error::bug("per-unit value column is not DOUBLE"))
+    }
+
+    const EXCLUSIONS: [(&str, &str); 3] = [
+        (columns::EXCLUDED_MULTIPLE_ARMS, "multiple_arms"),
+        (columns::EXCLUDED_MISSING_ARM, "missing_arm"),
+        (columns::EXCLUDED_ROWS_WITHOUT_UNIT, "rows_without_unit"),
+    ];
+
+    impl LocalEngine {
+        /// Runs the statement's CTEs (in parallel) with a final SELECT that streams the
+        /// per-unit rows out, then aggregates them per grouping set.
+        pub(crate) fn local_readout(&self, plan: &ExperimentPlan, sql: &str) -> Result<Vec<NamedRow>> {
+            let with = crate::execute::staged::with_clause(sql)
+                .ok_or_else(|| Error::bug("the readout statement has no WITH clause"))?;
+            let mut select = vec![format!("CAST({} AS VARCHAR)", columns::ARM)];
+            for (_, key) in EXCLUSIONS {
+                select.push(format!("CAST((SELECT {key} FROM exclusions) AS DOUBLE)"));
+            }
+            for c in &plan.columns {
+                select.push(format!("CAST({} AS DOUBLE)", ident(&c.column)));
+            }
+            for s in &plan.segments {
+                select.push(format!("CAST({} AS VARCHAR)", ident(&s.column)));
+            }
+            let query = format!("{with}\nSELECT {} FROM per_unit", select.join(", "));
+            let mut stmt = self
+                .conn
+                .prepare(&query)
+                .map_err(|e| err("preparing the query", e))?;
+            let batches: Vec<_> = stmt
+                .query_arrow([])
+                .map_err(|e| err("running the query", e))?
+                .collect();
+            let mut arms = Ids::default();
+            let mut arm_of: Vec<u32> = Vec::new();
+            let mut exclusions: [Cell; 3] = [Cell::Null, Cell::Null, Cell::Null];
+            let mut cols = vec![Column::default(); plan.columns.len()];
+            let mut seg_ids: Vec<Ids> = plan.segments.iter().map(|_| Ids::default()).collect();
+            let mut seg_of: Vec<Vec<u32>> = vec![Vec::new(); plan.segments.len()];
+            let first_value = 1 + EXCLUSIONS.len();
+            for (bi, b) in batches.iter().enumerate() {
+                let arm = text(b.column(0).as_ref())?;
+                for i in 0..arm.len() {
+                    arm_of.push(arms.id(arm.is_valid(i).then(|| arm.value(i))));
+                }
+                if bi == 0 && b.num_rows() > 0 {
+                    for (k, cell) in exclusions.iter_mut().enumerate() {
+                        let f = doubles(b.column(1 + k).as_ref())?;
+                        *cell = if f.is_valid(0) {
+                            Cell::Number(f.value(0))
+                        } else {
+                            Cell::Null
+                        };
+                    }
+                }
+                for (k, col) in cols.iter_mut().enumerate() {
+                    let f = doubles(b.column(first_value + k).as_ref())?;
+                    col.values.extend_from_slice(f.values());
+                    col.valid.extend((0..f.len()).map(|i| f.is_valid(i)));
+                }
+                for (k, ids) in seg_ids.iter_mut().enumerate() {
+                    let s = text(b.column(first_value + plan.columns.len() + k).as_ref())?;
+                    for i in 0..s.len() {
+                        seg_of[k].push(ids.id(s.is_valid(i).then(|| s.value(i))));
+                    }
+                }
+            }
+            // Groups as the GROUPING SETS make them: (0, -, arm) overall, (1 + k, value, arm)
+            // for segment k.
+            let mut groups: BTreeMap<(usize, u32, u32), Vec<u32>> = BTreeMap::new();
+            for (r, &arm) in arm_of.iter().enumerate() {
+                groups.entry((0, 0, arm)).or_default().push(r as u32);
+                for (k, seg) in seg_of.iter().enumerate() {
+                    groups.entry((1 + k, seg[r], arm)).or_default().push(r as u32);
+                }
+            }
+            let threads = usize::try_from(self.threads).unwrap_or(1).max(1);
+            let col_index: BTreeMap<&str, usize> = plan
+                .columns
+                .iter()
+                .enumerate()
+                .map(|(i, c)| (c.column.as_str(), i))
+                .collect();
+            let jobs: Vec<Job> = (0..cols.len())
+                .map(Job::Moments)
+                .chain(
+                    plan.covariances
+                        .iter()
+                        .map(|c| Job::Covariance(col_index[c.a.as_str()], col_index[c.b.as_str()])),
+                )
+                .collect();
+            let fingerprint = crate::plan::fingerprint(plan);
+            let mut out = Vec::new();
+            for ((set, value, arm), rows) in &groups {
+                let mut row = NamedRow::new();
+                let arm = arms.names[*arm as usize].clone().map_or(Cell::Null, Cell::Text);
+                row.insert(columns::ARM.into(), arm);
+                if !plan.segments.is_empty() {
+                    let (name, value) = match set {
+                        0 => (Cell::Null, Cell::Null),
+                        k => (
+                            Cell::Text(plan.segments[k - 1].name.clone()),
+                            seg_ids[k - 1].names[*value as usize]
+                                .clone()
+                                .map_or(Cell::Null, Cell::Text),
+                        ),
+                    };
+                    row.insert(columns::SEGMENT_NAME.into(), name);
+                    row.insert(columns::SEGMENT_VALUE.into(), value);
+                }
+                row.insert(columns::UNITS.into(), Cell::Number(rows.len() as f64));
+                for ((name, _), cell) in EXCLUSIONS.iter().zip(&exclusions) {
+                    row.insert((*name).into(), cell.clone());
+                }
+                // Every column and covariance of this group, spread over the engine's threads;
+                // each result depends only on its values, so the split changes nothing.
+                let num = |x: Option<f64>| x.map_or(Cell::Null, Cell::Number);
+                for (job, result) in jobs.iter().zip(run_jobs(&jobs, &cols, rows, threads)) {
+                    match (job, result) {
+                        (Job::Moments(i), JobResult::Moments(n, mean, var)) => {
+                            let c = &plan.columns[*i].column;
+                            row.insert(columns::stat(c, Stat::N), Cell::Number(n as f64));
+                            row.insert(columns::stat(c, Stat::Mean), num(mean));
+                            row.insert(columns::stat(c, Stat::Var), num(var));
+                        }
+                        (Job::Covariance(a, b), JobResult::Covariance(v)) => {
+                            let name =
+                                columns::covariance(&plan.columns[*a].column, &plan.columns[*b].column);
+                            row.insert(name, num(v));
+                        }
+                        _ => return Err(Error::bug("arm statistics out of step")),
+                    }
+                }
+                row.insert(columns::FINGERPRINT.into(), Cell::Text(fingerprint.clone()));
+                row.insert(
+                    columns::LAYOUT.into(),
+                    Cell::Number(f64::from(crate::plan::STATS_LAYOUT)),
+                );
+                out.push(row);
+            }
+            // The template's ORDER BY: segment_name NULLS FIRST, segment_value NULLS FIRST, arm.
+            let key = |r: &NamedRow, k: &str| match r.get(k) {
+                Some(Cell::Text(t)) => Some(t.clone()),
+                _ => None,
+            };
+            out.sort_by_key(|r| {
+                (
+                    key(r, columns::SEGMENT_NAME),
+                    key(r, columns::SEGMENT_VALUE),
+                    key(r, columns::ARM),
+                )
+            });
+            Ok(out)
+        }
+    }
+
+    #[derive(Debug, Clone, Copy)]
+    enum Job {
+        Moments(usize),
+        Covariance(usize, usize),
+    }
+
+    enum JobResult {
+        Moments(u64, Option<f64>, Option<f64>),
+        Covariance(Option<f64>),
+    }
+
+    fn run_job(job: &Job, cols: &[Column], rows: &[u32]) -> JobResult {
+        match *job {
+            Job::Moments(i) => {
+                let (n, mean, var) = arm_stats::moments(&cols[i], rows);
+                JobResult::Moments(n, mean, var)
+            }
+            Job::Covariance(a, b) => JobResult::Covariance(arm_stats::covariance(&cols[a], &cols[b], rows)),
+        }
+    }
+
+    fn run_jobs(jobs: &[Job], cols: &[Column], rows: &[u32], threads: usize) -> Vec<JobResult> {
+        if threads <= 1 || jobs.len() < 2 || rows.len() < 10_000 {
+            return jobs.iter().map(|j| run_job(j, cols, rows)).collect();
+        }
+        let chunk = jobs.len().div_ceil(threads);
+        std::thread::scope(|s| {
+            let handles: Vec<_> = jobs
+                .chunks(chunk)
+                .map(|part| s.spawn(move || part.iter().map(|j| run_job(j, cols, rows)).collect::<Vec<_>>()))
+                .collect();
+            handles
+                .into_iter()
+                .flat_map(|h| h.join().expect("arm statistics thread"))
+                .collect()
+        })
+    }
+}
+
 impl super::Engine for LocalEngine {
+    fn readout(&mut self, plan: &crate::plan::ExperimentPlan, sql: &str) -> Result<Vec<NamedRow>> {
+        self.local_readout(plan, sql)
+    }
+
     fn describe(&self) -> String {
         "local DuckDB".into()
     }

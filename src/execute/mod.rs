@@ -7,6 +7,7 @@
 //! named columns of the returned rows into a typed [`StatsTable`], checking that every column
 //! the plan asked for came back, so a short or renamed result can never be read as zeros.
 
+pub mod arm_stats;
 #[cfg(feature = "engine")]
 pub mod duckdb;
 #[cfg(feature = "postgres")]
@@ -43,6 +44,15 @@ pub trait Engine {
     fn dialect(&self) -> &str;
     /// Runs one statement and returns its rows by column name.
     fn query(&mut self, sql: &str) -> Result<Vec<NamedRow>>;
+
+    /// Runs the readout statement `sql` of `plan` and returns the rows its final SELECT
+    /// returns. By default the statement runs as it is; the local engine computes the final
+    /// aggregation itself, order-independently (`arm_stats`), to stay byte-identical on all
+    /// cores.
+    fn readout(&mut self, plan: &ExperimentPlan, sql: &str) -> Result<Vec<NamedRow>> {
+        let _ = plan;
+        self.query(sql)
+    }
 }
 
 fn number(row: &NamedRow, col: &str) -> Result<Option<f64>> {

@@ -29,11 +29,22 @@ use std::ops::ControlFlow;
 /// Prefix of the temporary tables of stage 1 (reserved in the local engine).
 pub const STAGE_PREFIX: &str = "plumb_stage_";
 
+/// One materialised CTE of stage 1.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StageTable {
+    /// The CTE's name in the statement (lower case).
+    pub cte: String,
+    /// The temporary table holding it.
+    pub table: String,
+    /// The `CREATE TEMP TABLE ... AS` statement.
+    pub create: String,
+}
+
 /// A statement split in two stages.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Staged {
-    /// Stage 1: `(temporary table, CREATE statement)`, in CTE order.
-    pub tables: Vec<(String, String)>,
+    /// Stage 1, in CTE order.
+    pub tables: Vec<StageTable>,
     /// Stage 2: the statement's top aggregation and what is above it, reading the tables.
     pub finish: String,
 }
@@ -72,8 +83,10 @@ const AGGREGATES: &[&str] = &[
 ];
 
 /// Splits `sql` (DuckDB dialect) at its top aggregation; `None` when it has no CTE that an
-/// aggregation reads (then there is nothing to stage and it runs as it is).
-pub fn stage(sql: &str) -> Option<Staged> {
+/// aggregation reads (then there is nothing to stage and it runs as it is). `ordered`: stage-1
+/// tables are sorted by all columns (needed when stage 2 is SQL on one thread; not when it is
+/// an order-independent aggregation, see `arm_stats`).
+pub fn stage(sql: &str, ordered: bool) -> Option<Staged> {
     let mut statements = Parser::parse_sql(&DuckDbDialect {}, sql).ok()?;
     if statements.len() != 1 {
         return None;
@@ -104,12 +117,17 @@ pub fn stage(sql: &str) -> Option<Staged> {
         .map(|&i| {
             let defs: Vec<String> = ctes[..=i].iter().map(Cte::to_string).collect();
             let create = format!(
-                "CREATE TEMP TABLE {} AS WITH {} SELECT * FROM {} ORDER BY ALL",
+                "CREATE TEMP TABLE {} AS WITH {} SELECT * FROM {}{}",
                 table(i),
                 defs.join(",\n"),
-                ctes[i].alias.name
+                ctes[i].alias.name,
+                if ordered { " ORDER BY ALL" } else { "" }
             );
-            (table(i), create)
+            StageTable {
+                cte: names[i].clone(),
+                table: table(i),
+                create,
+            }
         })
         .collect();
     // Stage 2: the serial CTEs (not materialised) and the body, inputs read from the tables.
@@ -140,6 +158,16 @@ pub fn stage(sql: &str) -> Option<Staged> {
         tables,
         finish: finish.to_string(),
     })
+}
+
+/// The statement's `WITH ...` clause as text (every CTE, re-printed), to run another final
+/// SELECT over its CTEs; `None` when `sql` is not one query with a WITH clause.
+pub fn with_clause(sql: &str) -> Option<String> {
+    let mut statements = Parser::parse_sql(&DuckDbDialect {}, sql).ok()?;
+    let Statement::Query(query) = statements.pop()? else {
+        return None;
+    };
+    query.with.as_ref().map(|w| w.to_string())
 }
 
 /// Walks down from `q` through non-aggregating layers; the CTEs an aggregating layer reads
@@ -234,16 +262,22 @@ mod tests {
                    b AS (SELECT u, n FROM a), \
                    ex AS (SELECT sum(n) AS total FROM a) \
                    SELECT count(*), avg(n), (SELECT total FROM ex) AS total FROM b";
-        let s = stage(sql).unwrap();
-        let names: Vec<&str> = s.tables.iter().map(|(t, _)| t.as_str()).collect();
+        let s = stage(sql, true).unwrap();
+        let names: Vec<&str> = s.tables.iter().map(|t| t.table.as_str()).collect();
         // The final SELECT aggregates over b and reads ex in a subquery: both are inputs.
         assert_eq!(names, ["plumb_stage_1", "plumb_stage_2"]);
+        assert_eq!(s.tables[1].cte, "ex");
         assert!(
             s.tables[0]
-                .1
+                .create
                 .starts_with("CREATE TEMP TABLE plumb_stage_1 AS WITH a AS")
         );
-        assert!(s.tables[0].1.ends_with("SELECT * FROM b ORDER BY ALL"));
+        assert!(s.tables[0].create.ends_with("SELECT * FROM b ORDER BY ALL"));
+        assert!(
+            stage(sql, false).unwrap().tables[0]
+                .create
+                .ends_with("SELECT * FROM b")
+        );
         assert_eq!(
             s.finish,
             "SELECT count(*), avg(n), (SELECT total FROM plumb_stage_2) AS total FROM plumb_stage_1"
@@ -255,9 +289,9 @@ mod tests {
         let sql = "WITH s AS (SELECT u, p, sum(x) AS v FROM t GROUP BY u, p), \
                    r AS (SELECT p, sum(v) AS total FROM s GROUP BY p UNION ALL SELECT p, count(*) FROM s GROUP BY p) \
                    SELECT p, total FROM r ORDER BY p";
-        let s = stage(sql).unwrap();
+        let s = stage(sql, true).unwrap();
         assert_eq!(s.tables.len(), 1, "{s:?}");
-        assert!(s.tables[0].1.contains("SELECT * FROM s ORDER BY ALL"));
+        assert!(s.tables[0].create.contains("SELECT * FROM s ORDER BY ALL"));
         assert!(
             s.finish
                 .starts_with("WITH r AS (SELECT p, sum(v) AS total FROM plumb_stage_0 GROUP BY p")
@@ -267,12 +301,15 @@ mod tests {
 
     #[test]
     fn nothing_to_stage() {
-        assert_eq!(stage("SELECT count(*) FROM t"), None);
-        assert_eq!(stage("WITH a AS (SELECT 1 AS x) SELECT x FROM a"), None);
-        assert_eq!(stage("not sql at all"), None);
+        assert_eq!(stage("SELECT count(*) FROM t", true), None);
+        assert_eq!(stage("WITH a AS (SELECT 1 AS x) SELECT x FROM a", true), None);
+        assert_eq!(stage("not sql at all", true), None);
         // A window function is not an aggregation of its SELECT.
         assert_eq!(
-            stage("WITH a AS (SELECT 1 AS x) SELECT row_number() OVER (ORDER BY x) FROM a"),
+            stage(
+                "WITH a AS (SELECT 1 AS x) SELECT row_number() OVER (ORDER BY x) FROM a",
+                true
+            ),
             None
         );
     }
