@@ -452,7 +452,7 @@ fn local_schemas(
         let duck = execute::duckdb::LocalEngine::open_with(
             local.database.as_deref(),
             &local.tables,
-            &local.settings,
+            &local.settings.checked(),
         )?;
         let schemas = duck.schemas()?;
         *engine = Some(Box::new(duck));

@@ -33,6 +33,18 @@ pub struct LocalSettings {
     pub temp_directory: Option<PathBuf>,
 }
 
+impl LocalSettings {
+    /// Only the values that pass the checks of `plumb.yaml` (invalid ones are reported as
+    /// errors there): what an engine may be opened with before the checks have run.
+    pub fn checked(&self) -> LocalSettings {
+        LocalSettings {
+            threads: self.threads.filter(|t| (1..=MAX_THREADS).contains(t)),
+            memory_limit: self.memory_limit.clone().filter(|m| is_memory_size(m)),
+            temp_directory: self.temp_directory.clone(),
+        }
+    }
+}
+
 #[derive(Debug)]
 pub struct Workspace {
     pub root: PathBuf,
@@ -207,14 +219,22 @@ impl Loaded {
     }
 }
 
-/// `threads` at least 1; `memory_limit` a size DuckDB reads (`4GB`, `512 MiB`).
+/// The most worker threads `local.threads` accepts (DuckDB would try to start any number).
+pub const MAX_THREADS: u32 = 1024;
+
+/// `threads` from 1 to [`MAX_THREADS`]; `memory_limit` a size DuckDB reads (`4GB`, `512 MiB`).
 fn check_local_settings(raw_ws: &RawWorkspace, s: &LocalSettings, diags: &mut Vec<Diagnostic>) {
     let span = |key: &str| raw_ws.value_span(&[Seg::Key("local".into()), Seg::Key(key.into())]);
-    if s.threads == Some(0) {
+    if let Some(t) = s.threads
+        && !(1..=MAX_THREADS).contains(&t)
+    {
         diags.push(
-            Diagnostic::error("E017", "`threads` must be at least 1")
-                .at(span("threads"))
-                .hint("remove `threads:` to use every core; results are the same for any value"),
+            Diagnostic::error(
+                "E017",
+                format!("`threads` must be between 1 and {MAX_THREADS}, got {t}"),
+            )
+            .at(span("threads"))
+            .hint("remove `threads:` to use every core; results are the same for any value"),
         );
     }
     if let Some(m) = &s.memory_limit
@@ -298,7 +318,7 @@ pub fn local_schemas(local: &LocalData) -> Result<Schemas> {
         crate::execute::duckdb::LocalEngine::open_with(
             local.database.as_deref(),
             &local.tables,
-            &local.settings,
+            &local.settings.checked(),
         )?
         .schemas()
     }

@@ -236,7 +236,10 @@ fn local_settings_are_checked_with_located_errors() {
     .unwrap();
     let (code, _, err) = plumb(&ws, &["check"]);
     assert_eq!(code, Some(1), "{err}");
-    assert!(err.contains("`threads` must be at least 1"), "{err}");
+    assert!(
+        err.contains("`threads` must be between 1 and 1024, got 0"),
+        "{err}"
+    );
     assert!(err.contains("`memory_limit` `lots` is not a size"), "{err}");
     assert!(err.contains("plumb.yaml:5:"), "located: {err}");
     // A glob that matches nothing and a folder are clear data errors (exit 2).
