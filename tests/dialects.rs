@@ -138,6 +138,109 @@ experiments:
     }
 }
 
+/// Literals and quoted names inside user fragments are re-emitted with each engine's own
+/// escaping: on engines that read backslash escapes (BigQuery, Snowflake, Redshift, Spark),
+/// `'x\'` printed as written would swallow the rest of the condition and let
+/// `OR 4242 = 4242 --` become SQL. Read with each engine's tokenizer, the payload must stay
+/// inside literals and the values must be the ones the user wrote.
+#[test]
+fn hostile_fragments_stay_literals_on_every_dialect() {
+    use sqlparser::tokenizer::{Token, Tokenizer};
+    let catalog = r#"
+units:
+  - name: user
+event_tables:
+  - name: events
+    unit: user
+    table: "ev\\"
+    id: id
+    time: t
+exposure_logs:
+  - name: exposures
+    unit: user
+    table: exposures
+    id: id
+    time: t
+    experiment: experiment
+    arm: arm
+metrics:
+  - name: hits
+    events: events
+    per_unit: count
+    where: |-
+      status = 'x\' OR status = ' OR 4242 = 4242 --' OR "c\" = 'it''s' OR page = E'a\'b'
+experiments:
+  - name: hostile
+    exposures: exposures
+    key: 'k\'
+    control: c
+    split: {c: 1, t: 1}
+    start: 2026-01-01
+    end: 2026-01-02
+    primary: [hits]
+"#;
+    let mut sources = SourceMap::new();
+    let (raw, diags) = load_catalog_texts(&[("hostile.yaml", catalog)], &mut sources);
+    assert!(
+        diags.is_empty(),
+        "{}",
+        plumb::diagnostics::render_plain(&sources, &diags)
+    );
+    let catalog = plumb::resolve::resolve(&sources, &raw).unwrap();
+    for name in std::iter::once("generic").chain(builtin_dialects()) {
+        let dialect = Dialect::load(name, None).unwrap();
+        let (_, sql) = plumb::compile_experiment(&catalog, 0, &[], &dialect).unwrap();
+        // How the engine itself reads the text (sqlparser's tokenizer for that engine).
+        let reading = match name {
+            "postgres" => "postgresql",
+            "spark" => "databricks",
+            "trino" => "generic",
+            other => other,
+        };
+        let reading = sqlparser::dialect::dialect_from_str(reading).unwrap();
+        let tokens = Tokenizer::new(reading.as_ref(), &sql).tokenize().unwrap();
+        let literals: Vec<&str> = tokens
+            .iter()
+            .filter_map(|t| match t {
+                Token::SingleQuotedString(s) => Some(s.as_str()),
+                _ => None,
+            })
+            .collect();
+        for expected in [r"x\", " OR 4242 = 4242 --", "it's", "a'b", r"k\"] {
+            assert!(
+                literals.contains(&expected),
+                "{name}: `{expected}` is not one literal; literals: {literals:?}"
+            );
+        }
+        assert!(
+            !tokens
+                .iter()
+                .any(|t| matches!(t, Token::Number(n, _) if n == "4242")),
+            "{name}: the payload became SQL:\n{sql}"
+        );
+        let quoted: Vec<&str> = tokens
+            .iter()
+            .filter_map(|t| match t {
+                Token::Word(w) if w.quote_style.is_some() => Some(w.value.as_str()),
+                _ => None,
+            })
+            .collect();
+        // sqlparser's BigQuery tokenizer does not unescape quoted names; BigQuery does
+        // (its lexical reference: quoted identifiers take the escapes of string literals).
+        let names = if name == "bigquery" {
+            [r"c\\", r"ev\\"]
+        } else {
+            [r"c\", r"ev\"]
+        };
+        for expected in names {
+            assert!(
+                quoted.contains(&expected),
+                "{name}: quoted name `{expected}` not read back; quoted names: {quoted:?}"
+            );
+        }
+    }
+}
+
 #[test]
 fn report_queries_parse_in_every_dialect() {
     let files = [(

@@ -20,7 +20,7 @@ use crate::plan::{
 use crate::time::Timestamp;
 use minijinja::{Environment, UndefinedBehavior, context};
 use serde::{Deserialize, Serialize};
-use sqlparser::ast::{Expr, Ident, visit_expressions_mut};
+use sqlparser::ast::{Expr, Ident, Value, ValueWithSpan, VisitMut, VisitorMut};
 use std::collections::BTreeMap;
 use std::ops::ControlFlow;
 use std::path::{Path, PathBuf};
@@ -108,13 +108,24 @@ pub fn builtin_dialects() -> Vec<&'static str> {
     names
 }
 
+/// A plain lowercase name (`[a-z_][a-z0-9_]*`): what an upper-case-folding engine stores in
+/// upper case when it is written bare.
+fn folds(name: &str) -> bool {
+    name.starts_with(|c: char| c.is_ascii_lowercase() || c == '_')
+        && name
+            .chars()
+            .all(|c| c.is_ascii_lowercase() || c.is_ascii_digit() || c == '_')
+}
+
 /// How identifiers from the catalog are quoted.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum IdentifierQuoting {
     /// Every identifier is quoted.
     Always,
-    /// Plain lowercase names (`[a-z_][a-z0-9_]*`) stay bare; others are quoted.
+    /// For engines that fold unquoted names to upper case: plain lowercase names
+    /// (`[a-z_][a-z0-9_]*`) stay bare, or are quoted in upper case when they are keywords;
+    /// others are quoted as written.
     WhenNeeded,
 }
 
@@ -126,6 +137,7 @@ pub struct Capabilities {
     pub sqlparser: String,
     pub identifier_quote: String,
     pub identifier_quoting: IdentifierQuoting,
+    pub identifier_backslash_escapes: bool,
     pub float_type: String,
     pub string_type: String,
     pub filter_clause: bool,
@@ -136,6 +148,7 @@ pub struct Capabilities {
     pub percentile: String,
     pub sum_input: String,
     pub backslash_escapes: bool,
+    pub doubled_quotes: bool,
     pub date_trunc: String,
 }
 
@@ -147,6 +160,7 @@ struct CapabilitiesOverride {
     sqlparser: Option<String>,
     identifier_quote: Option<String>,
     identifier_quoting: Option<IdentifierQuoting>,
+    identifier_backslash_escapes: Option<bool>,
     float_type: Option<String>,
     string_type: Option<String>,
     filter_clause: Option<bool>,
@@ -157,6 +171,7 @@ struct CapabilitiesOverride {
     percentile: Option<String>,
     sum_input: Option<String>,
     backslash_escapes: Option<bool>,
+    doubled_quotes: Option<bool>,
     date_trunc: Option<String>,
 }
 
@@ -191,6 +206,31 @@ fn dialect_exists(user_dir: Option<&Path>, name: &str) -> bool {
     BUILTIN.iter().any(|(d, _, _)| *d == name) || user_dir.is_some_and(|d| d.join(name).is_dir())
 }
 
+/// Rewrites the literals and quoted names of a parsed user fragment into the target
+/// dialect's own spelling (see [`Dialect::fragment`]): each becomes text that sqlparser
+/// prints verbatim.
+struct Reemit<'a>(&'a Dialect);
+
+impl VisitorMut for Reemit<'_> {
+    type Break = ();
+
+    fn pre_visit_value(&mut self, value: &mut ValueWithSpan) -> ControlFlow<()> {
+        if let Some(text) = crate::resolve::sql::string_content(&value.value) {
+            let literal = self.0.literal(&text);
+            value.value = Value::Placeholder(literal);
+        }
+        ControlFlow::Continue(())
+    }
+
+    fn pre_visit_ident(&mut self, ident: &mut Ident) -> ControlFlow<()> {
+        if ident.quote_style.is_some() {
+            ident.value = self.0.quoted(&ident.value);
+            ident.quote_style = None;
+        }
+        ControlFlow::Continue(())
+    }
+}
+
 impl Dialect {
     /// Loads dialect `name`, looking in `user_dir` first, then the built-in folders.
     pub fn load(name: &str, user_dir: Option<&Path>) -> Result<Dialect> {
@@ -218,6 +258,7 @@ impl Dialect {
                 sqlparser,
                 identifier_quote,
                 identifier_quoting,
+                identifier_backslash_escapes,
                 float_type,
                 string_type,
                 filter_clause,
@@ -228,10 +269,16 @@ impl Dialect {
                 percentile,
                 sum_input,
                 backslash_escapes,
+                doubled_quotes,
                 date_trunc
             );
         }
         caps.name = name.to_string();
+        if !caps.doubled_quotes && !caps.backslash_escapes {
+            return Err(Error::dialect(format!(
+                "dialect {name}: `doubled_quotes: false` needs `backslash_escapes: true` (a quote inside a literal is then escaped with a backslash)"
+            )));
+        }
         let mut templates = BTreeMap::new();
         for file in TEMPLATES {
             let (text, user) = match read_file(user_dir, name, file)? {
@@ -265,60 +312,77 @@ impl Dialect {
     }
 
     /// Quotes an identifier, doubling any quote character inside it. With
-    /// `identifier_quoting: when_needed`, plain lowercase names that are not SQL keywords stay
-    /// bare.
+    /// `identifier_quoting: when_needed` (engines that fold unquoted names to upper case),
+    /// plain lowercase names stay bare, and a plain name that must be quoted because it is a
+    /// keyword is quoted the way such an engine stores it, in upper case (`at` → `"AT"`), so it
+    /// still names the column created as `at`.
     pub fn ident(&self, name: &str) -> String {
-        let plain = name.starts_with(|c: char| c.is_ascii_lowercase() || c == '_')
-            && name
-                .chars()
-                .all(|c| c.is_ascii_lowercase() || c.is_ascii_digit() || c == '_')
+        if self.caps.identifier_quoting == IdentifierQuoting::WhenNeeded
+            && folds(name)
             && sqlparser::keywords::ALL_KEYWORDS
                 .binary_search(&name.to_ascii_uppercase().as_str())
-                .is_err();
-        if plain && self.caps.identifier_quoting == IdentifierQuoting::WhenNeeded {
+                .is_err()
+        {
             return name.to_string();
         }
-        let q = &self.caps.identifier_quote;
-        format!("{q}{}{q}", name.replace(q.as_str(), &format!("{q}{q}")))
+        self.quoted(name)
+    }
+
+    /// `name` always quoted: the quote character doubled (and a backslash escaped where quoted
+    /// names read backslash escapes), and a plain lowercase name in upper case for an
+    /// upper-case-folding engine.
+    pub fn quoted(&self, name: &str) -> String {
+        let q = self.caps.identifier_quote.as_str();
+        if self.caps.identifier_quoting == IdentifierQuoting::WhenNeeded && folds(name) {
+            return format!("{q}{}{q}", name.to_ascii_uppercase());
+        }
+        // A quote inside is doubled: where names read backslash escapes (BigQuery), a doubled
+        // quote is no escape and ends the name, which makes the statement fail, never
+        // changes it; a backslash is escaped there so that it cannot escape the closing quote.
+        let mut body = name.to_string();
+        if self.caps.identifier_backslash_escapes {
+            body = body.replace('\\', "\\\\");
+        }
+        let body = body.replace(q, &format!("{q}{q}"));
+        format!("{q}{body}{q}")
     }
 
     /// A string literal: single quotes doubled, or — for engines that read backslash escapes
     /// inside literals — backslashes and quotes escaped with a backslash.
     pub fn literal(&self, value: &str) -> String {
+        let mut body = value.to_string();
         if self.caps.backslash_escapes {
-            // Engines that read backslash escapes also read two adjacent quotes as two string
-            // literals (concatenated), so a quote is escaped with a backslash there.
-            format!("'{}'", value.replace('\\', "\\\\").replace('\'', "\\'"))
-        } else {
-            format!("'{}'", value.replace('\'', "''"))
+            body = body.replace('\\', "\\\\");
         }
+        // Where two adjacent quotes are two literals (concatenated), a quote is escaped with a
+        // backslash instead.
+        let body = if self.caps.doubled_quotes {
+            body.replace('\'', "''")
+        } else {
+            body.replace('\'', "\\'")
+        };
+        format!("'{body}'")
     }
 
-    /// Re-emits a user fragment for this dialect: identifiers the user quoted get this
-    /// dialect's quote character; bare ones stay bare.
+    /// Re-emits a user fragment for this dialect. Every string literal and quoted name inside
+    /// it is written again by [`Dialect::literal`] and [`Dialect::quoted`], so that what the
+    /// user wrote as one literal stays one literal on every engine (`'it''s'` is two adjacent
+    /// literals on engines that read backslash escapes, and `'x\'` ends early there); bare
+    /// names stay bare.
     pub fn fragment(&self, expr: &Expr) -> String {
         let mut expr = expr.clone();
-        let quote = self.caps.identifier_quote.chars().next();
-        let requote = |ident: &mut Ident| {
-            if ident.quote_style.is_some() {
-                ident.quote_style = quote;
-            }
-        };
-        let _ = visit_expressions_mut(&mut expr, |e| {
-            match e {
-                Expr::Identifier(i) => requote(i),
-                Expr::CompoundIdentifier(parts) => parts.iter_mut().for_each(requote),
-                _ => {}
-            }
-            ControlFlow::<()>::Continue(())
-        });
+        let _ = expr.visit(&mut Reemit(self));
         expr.to_string()
     }
 
     fn source(&self, source: &Source) -> String {
         match source {
             Source::Table(parts) => parts.iter().map(|p| self.ident(p)).collect::<Vec<_>>().join("."),
-            Source::Query(q) => format!("({q})"),
+            Source::Query(q) => {
+                let mut q = q.clone();
+                let _ = q.visit(&mut Reemit(self));
+                format!("({q})")
+            }
         }
     }
 
@@ -758,7 +822,12 @@ mod tests {
     fn bare_names_only_when_safe() {
         let d = Dialect::load("snowflake", None).unwrap();
         assert_eq!(d.ident("shopper_id"), "shopper_id");
-        assert_eq!(d.ident("at"), "\"at\"", "keywords are quoted");
+        assert_eq!(
+            d.ident("at"),
+            "\"AT\"",
+            "keywords are quoted as Snowflake stores them"
+        );
+        assert_eq!(d.ident("status"), "\"STATUS\"");
         assert_eq!(d.ident("Region"), "\"Region\"");
     }
 
@@ -770,5 +839,34 @@ mod tests {
         assert_eq!(d.add_seconds("t", 14 * 86_400).unwrap(), "t + INTERVAL '14' DAY");
         assert_eq!(d.add_seconds("t", 5400).unwrap(), "t + INTERVAL '5400' SECOND");
         assert!(Dialect::load("nope", None).is_err());
+    }
+
+    /// Redshift's covariance from variances must use the rows where both values are present,
+    /// as `covar_samp` does; evaluated on DuckDB against `covar_samp` over data with NULLs.
+    #[cfg(feature = "engine")]
+    #[test]
+    fn covariance_from_variances_skips_the_same_rows_as_covar_samp() {
+        use crate::execute::Cell;
+        use crate::execute::duckdb::LocalEngine;
+        let engine = LocalEngine::open(None, &[]).unwrap();
+        engine
+            .execute_batch(
+                "CREATE TABLE t AS SELECT CASE WHEN i % 3 = 0 THEN NULL ELSE i * 1.5 END AS a, \
+                 CASE WHEN i % 5 = 0 THEN NULL ELSE (i * 7) % 11 END AS b FROM range(1, 200) AS r(i)",
+            )
+            .unwrap();
+        let value = |sql: &str| match engine.query(&format!("SELECT {sql} AS v FROM t")).unwrap()[0]["v"] {
+            Cell::Number(v) => v,
+            ref other => panic!("{other:?}"),
+        };
+        let expected = value("covar_samp(a, b)");
+        for name in ["redshift", "generic", "duckdb", "postgres"] {
+            let d = Dialect::load(name, None).unwrap();
+            let got = value(&d.covar_samp("a", "b").unwrap());
+            assert!(
+                (got - expected).abs() <= 1e-9 * expected.abs(),
+                "{name}: {got} vs {expected}"
+            );
+        }
     }
 }
