@@ -832,6 +832,13 @@ mod tests {
     }
 
     #[test]
+    fn redshift_segment_values_are_not_cut_at_256_characters() {
+        // A bare VARCHAR is VARCHAR(256) on Redshift (its CREATE TABLE reference).
+        let d = Dialect::load("redshift", None).unwrap();
+        assert_eq!(d.caps.string_type, "VARCHAR(65535)");
+    }
+
+    #[test]
     fn dialect_overrides_fall_back_to_generic() {
         let d = Dialect::load("duckdb", None).unwrap();
         assert!(d.caps.filter_clause);
