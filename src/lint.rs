@@ -57,7 +57,34 @@ pub const RULES: &[Rule] = &[
         name: "sum-without-winsorize",
         rationale: "sums of values (revenue, time) are usually heavy-tailed; a few extreme units can decide the result",
     },
+    Rule {
+        code: "L009",
+        name: "integer-division",
+        rationale: "dividing by a whole number truncates on PostgreSQL, Redshift and Trino when the column is an integer (amount_cents / 100 gives 12, not 12.34), but not on DuckDB, Spark or BigQuery",
+    },
 ];
+
+/// The text of every division by a whole-number literal in `expr` (`amount_cents / 100`).
+fn integer_divisions(expr: &sqlparser::ast::Expr) -> Vec<String> {
+    use sqlparser::ast::{BinaryOperator, Expr, Value, visit_expressions};
+    use std::ops::ControlFlow;
+    let mut found = Vec::new();
+    let _ = visit_expressions(expr, |e| {
+        if let Expr::BinaryOp {
+            op: BinaryOperator::Divide,
+            right,
+            ..
+        } = e
+            && let Expr::Value(v) = right.as_ref()
+            && let Value::Number(n, _) = &v.value
+            && n.chars().all(|c| c.is_ascii_digit())
+        {
+            found.push(e.to_string());
+        }
+        ControlFlow::<()>::Continue(())
+    });
+    found
+}
 
 fn rule(code: &str) -> &'static Rule {
     RULES.iter().find(|r| r.code == code).expect("a defined rule")
@@ -114,6 +141,26 @@ pub fn lint(raw: &RawCatalog, catalog: &Catalog) -> Vec<Diagnostic> {
                     .at(item.key_span("per_unit"))
                     .hint("add e.g. `winsorize: 99.9%` after checking the tail of the per-unit values"),
             );
+        }
+        if let MetricKind::Events { value, filter, .. } = &m.kind {
+            for (key, expr) in [("of", value), ("where", filter)] {
+                for division in expr.iter().flat_map(|e| integer_divisions(e)) {
+                    let fixed = division
+                        .trim_end_matches(|c: char| c.is_ascii_digit())
+                        .to_string();
+                    let literal = &division[fixed.len()..];
+                    out.push(
+                        warn(
+                            "L009",
+                            format!("metric `{}` divides by a whole number: `{division}`", m.name),
+                        )
+                        .at(item.value_span(key))
+                        .hint(format!(
+                            "write `{fixed}{literal}.0` to divide as a decimal on every engine"
+                        )),
+                    );
+                }
+            }
         }
         if let MetricKind::Ratio { denominator, .. } = m.kind
             && let MetricKind::Events { filter, window, .. } = &catalog.metrics[denominator].kind

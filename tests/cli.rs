@@ -239,6 +239,32 @@ fn lint_warnings_are_reported_configurable_and_deniable() {
 }
 
 #[test]
+fn division_by_a_whole_number_is_linted_with_the_fix() {
+    let body = std::fs::read_to_string(fixtures().join("ok_minimal.yaml")).unwrap();
+    let body = body.replacen(
+        "per_unit: count\n    where: \"status = 'paid'\"",
+        "per_unit: sum\n    of: amount_cents / 100\n    where: \"amount_cents / 100 > 5 and amount_cents / 100.0 < 9\"",
+        1,
+    );
+    let ws = workspace(&[("ok.yaml", &body)]);
+    let out = plumb(ws.path(), &["check", "--format", "json"]);
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let l009: Vec<&serde_json::Value> = v["diagnostics"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|d| d["code"] == "L009")
+        .collect();
+    // Once in `of`, once in `where`; `/ 100.0` is a decimal division and not flagged.
+    assert_eq!(l009.len(), 2, "{}", text(&out.stdout));
+    let all = serde_json::to_string(&l009).unwrap();
+    assert!(
+        all.contains("amount_cents / 100.0"),
+        "the fix-it is offered: {all}"
+    );
+}
+
+#[test]
 fn the_demo_catalog_is_lint_clean() {
     let dir = tempfile::tempdir().unwrap();
     std::fs::create_dir_all(dir.path().join("metrics")).unwrap();
