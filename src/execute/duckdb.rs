@@ -281,21 +281,32 @@ mod readout {
     use duckdb::arrow::datatypes::DataType;
     use std::collections::{BTreeMap, HashMap};
 
-    /// Text values as small integer ids (arms, segment values), in order of appearance.
+    /// Text values as small integer ids (arms, segment values), in order of appearance;
+    /// looking up a value already seen allocates nothing.
     #[derive(Default)]
     struct Ids {
         names: Vec<Option<String>>,
-        index: HashMap<Option<String>, u32>,
+        index: HashMap<String, u32>,
+        null: Option<u32>,
     }
 
     impl Ids {
         fn id(&mut self, v: Option<&str>) -> u32 {
-            if let Some(&i) = self.index.get(&v.map(str::to_string)) {
+            let known = match v {
+                Some(v) => self.index.get(v).copied(),
+                None => self.null,
+            };
+            if let Some(i) = known {
                 return i;
             }
             let i = self.names.len() as u32;
             self.names.push(v.map(str::to_string));
-            self.index.insert(v.map(str::to_string), i);
+            match v {
+                Some(v) => {
+                    self.index.insert(v.to_string(), i);
+                }
+                None => self.null = Some(i),
+            }
             i
         }
     }
@@ -321,7 +332,27 @@ mod readout {
         (columns::EXCLUDED_ROWS_WITHOUT_UNIT, "rows_without_unit"),
     ];
 
+    /// The temporary table that holds a readout's per-unit rows while they are read.
+    const PER_UNIT_TABLE: &str = "plumb_per_unit";
+
     impl LocalEngine {
+        /// Runs `create` (which fills [`PER_UNIT_TABLE`]) without insertion order and reads
+        /// the table back.
+        fn materialised(&self, create: &str) -> Result<Vec<duckdb::arrow::record_batch::RecordBatch>> {
+            self.conn
+                .execute_batch(&format!("SET preserve_insertion_order = false;\n{create}"))
+                .map_err(|e| err("running the query", e))?;
+            let mut stmt = self
+                .conn
+                .prepare(&format!("SELECT * FROM {PER_UNIT_TABLE}"))
+                .map_err(|e| err("preparing the query", e))?;
+            let batches = stmt
+                .query_arrow([])
+                .map_err(|e| err("reading the per-unit rows", e))?
+                .collect();
+            Ok(batches)
+        }
+
         /// Runs the statement's CTEs (in parallel) with a final SELECT that streams the
         /// per-unit rows out, then aggregates them per grouping set.
         pub(crate) fn local_readout(&self, plan: &ExperimentPlan, sql: &str) -> Result<Vec<NamedRow>> {
@@ -337,15 +368,19 @@ mod readout {
             for s in &plan.segments {
                 select.push(format!("CAST({} AS VARCHAR)", ident(&s.column)));
             }
-            let query = format!("{with}\nSELECT {} FROM per_unit", select.join(", "));
-            let mut stmt = self
-                .conn
-                .prepare(&query)
-                .map_err(|e| err("preparing the query", e))?;
-            let batches: Vec<_> = stmt
-                .query_arrow([])
-                .map_err(|e| err("running the query", e))?
-                .collect();
+            // The per-unit rows are materialised first (a parallel write, in no particular
+            // order: nothing below depends on it), then read back as Arrow batches.
+            let create = format!(
+                "CREATE OR REPLACE TEMP TABLE {PER_UNIT_TABLE} AS\n{with}\nSELECT {} FROM per_unit",
+                select.join(", ")
+            );
+            let batches = self.materialised(&create);
+            self.conn
+                .execute_batch(&format!(
+                    "DROP TABLE IF EXISTS {PER_UNIT_TABLE}; SET preserve_insertion_order = true"
+                ))
+                .map_err(|e| err("cleaning up after a query", e))?;
+            let batches = batches?;
             let mut arms = Ids::default();
             let mut arm_of: Vec<u32> = Vec::new();
             let mut exclusions: [Cell; 3] = [Cell::Null, Cell::Null, Cell::Null];
@@ -382,13 +417,23 @@ mod readout {
             }
             // Groups as the GROUPING SETS make them: (0, -, arm) overall, (1 + k, value, arm)
             // for segment k.
-            let mut groups: BTreeMap<(usize, u32, u32), Vec<u32>> = BTreeMap::new();
+            let n_arms = arms.names.len();
+            let mut buckets: Vec<Vec<Vec<u32>>> = std::iter::once(1)
+                .chain(seg_ids.iter().map(|ids| ids.names.len()))
+                .map(|values| vec![Vec::new(); values * n_arms])
+                .collect();
             for (r, &arm) in arm_of.iter().enumerate() {
-                groups.entry((0, 0, arm)).or_default().push(r as u32);
+                buckets[0][arm as usize].push(r as u32);
                 for (k, seg) in seg_of.iter().enumerate() {
-                    groups.entry((1 + k, seg[r], arm)).or_default().push(r as u32);
+                    buckets[1 + k][seg[r] as usize * n_arms + arm as usize].push(r as u32);
                 }
             }
+            let groups = buckets.into_iter().enumerate().flat_map(|(set, b)| {
+                b.into_iter()
+                    .enumerate()
+                    .filter(|(_, rows)| !rows.is_empty())
+                    .map(move |(i, rows)| ((set, (i / n_arms) as u32, (i % n_arms) as u32), rows))
+            });
             let threads = usize::try_from(self.threads).unwrap_or(1).max(1);
             let col_index: BTreeMap<&str, usize> = plan
                 .columns
@@ -406,16 +451,16 @@ mod readout {
                 .collect();
             let fingerprint = crate::plan::fingerprint(plan);
             let mut out = Vec::new();
-            for ((set, value, arm), rows) in &groups {
+            for ((set, value, arm), rows) in groups {
                 let mut row = NamedRow::new();
-                let arm = arms.names[*arm as usize].clone().map_or(Cell::Null, Cell::Text);
+                let arm = arms.names[arm as usize].clone().map_or(Cell::Null, Cell::Text);
                 row.insert(columns::ARM.into(), arm);
                 if !plan.segments.is_empty() {
                     let (name, value) = match set {
                         0 => (Cell::Null, Cell::Null),
                         k => (
                             Cell::Text(plan.segments[k - 1].name.clone()),
-                            seg_ids[k - 1].names[*value as usize]
+                            seg_ids[k - 1].names[value as usize]
                                 .clone()
                                 .map_or(Cell::Null, Cell::Text),
                         ),
@@ -430,7 +475,7 @@ mod readout {
                 // Every column and covariance of this group, spread over the engine's threads;
                 // each result depends only on its values, so the split changes nothing.
                 let num = |x: Option<f64>| x.map_or(Cell::Null, Cell::Number);
-                for (job, result) in jobs.iter().zip(run_jobs(&jobs, &cols, rows, threads)) {
+                for (job, result) in jobs.iter().zip(run_jobs(&jobs, &cols, &rows, threads)) {
                     match (job, result) {
                         (Job::Moments(i), JobResult::Moments(n, mean, var)) => {
                             let c = &plan.columns[*i].column;
