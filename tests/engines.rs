@@ -4,8 +4,11 @@
 //! their statistics tables must equal DuckDB's (counts exactly, moments to 1e-9 relative) and
 //! `plumb analyze --stats` on them must give the same readouts as the local DuckDB run.
 //!
-//! Each engine runs when its variable is set (`.ci/run` sets both): `PLUMB_PG_URL` (a
-//! PostgreSQL connection URL for `psql`) and `PLUMB_SPARK_PYTHON` (a Python with `pyspark`).
+//! Each engine runs when its variable is set (`.ci/run` sets them all): `PLUMB_PG_URL` (a
+//! PostgreSQL connection URL for `psql`), `PLUMB_SPARK_PYTHON` (a Python with `pyspark`) and
+//! `PLUMB_DATAFUSION_PYTHON` (a Python with `datafusion`), `PLUMB_SQLGLOT_PYTHON` (a Python
+//! with `sqlglot` and `duckdb`: the other dialects transpiled to DuckDB, and Snowflake's
+//! names resolved against an upper-case schema).
 //! Otherwise the test says loudly that it was skipped.
 #![cfg(feature = "engine")]
 
@@ -320,5 +323,157 @@ fn spark_sql_gives_the_same_statistics_and_readouts_as_duckdb() {
     );
     for exp in EXPERIMENTS {
         compare_with_duckdb(ws, exp, &ws.join(format!("{exp}.stats.csv")));
+    }
+}
+
+#[test]
+fn datafusion_gives_the_same_statistics_and_readouts_as_duckdb() {
+    let Ok(python) = std::env::var("PLUMB_DATAFUSION_PYTHON") else {
+        eprintln!(
+            "SKIPPED: DataFusion engine test (set PLUMB_DATAFUSION_PYTHON to a Python with datafusion; .ci/run does)"
+        );
+        return;
+    };
+    let dir = workspace();
+    let ws = dir.path();
+    let mut jobs = Vec::new();
+    // The dialects whose SQL DataFusion reads as it is: the ANSI baseline and two that
+    // differ from it (PostgreSQL's and Trino's).
+    let dialects = ["generic", "postgres", "trino"];
+    for dialect in dialects {
+        for exp in EXPERIMENTS {
+            let sql = sql(ws, exp, dialect);
+            let tables: serde_json::Map<String, serde_json::Value> =
+                ["orders", "visits", "assignments", "shoppers"]
+                    .iter()
+                    .map(|t| {
+                        (
+                            t.to_string(),
+                            ws.join(format!("data/{t}.csv")).to_str().unwrap().into(),
+                        )
+                    })
+                    .collect();
+            jobs.push(serde_json::json!({
+                "sql": sql,
+                "tables": tables,
+                "out": ws.join(format!("{exp}.{dialect}.datafusion.csv")),
+            }));
+        }
+    }
+    std::fs::write(ws.join("jobs.json"), serde_json::to_string(&jobs).unwrap()).unwrap();
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/engines/datafusion_stats.py");
+    let out = Command::new(python)
+        .arg(script)
+        .arg(ws.join("jobs.json"))
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "datafusion failed:\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    eprintln!("{}", String::from_utf8_lossy(&out.stderr));
+    for dialect in dialects {
+        for exp in EXPERIMENTS {
+            compare_with_duckdb(ws, exp, &ws.join(format!("{exp}.{dialect}.datafusion.csv")));
+        }
+    }
+}
+
+/// Writes `files` as a workspace catalog (no data) and returns the `plumb sql` output path.
+fn fixture_sql(dir: &Path, fixture: &str, exp: &str, dialect: &str) -> std::path::PathBuf {
+    std::fs::create_dir_all(dir.join("metrics")).unwrap();
+    std::fs::write(dir.join("plumb.yaml"), "catalog: metrics\n").unwrap();
+    let text = std::fs::read_to_string(
+        Path::new(env!("CARGO_MANIFEST_DIR"))
+            .join("tests/fixtures")
+            .join(fixture),
+    )
+    .unwrap();
+    std::fs::write(dir.join("metrics").join(fixture), text).unwrap();
+    sql(dir, exp, dialect)
+}
+
+#[test]
+fn transpiled_dialects_give_duckdbs_numbers_and_snowflake_names_resolve_in_upper_case() {
+    let Ok(python) = std::env::var("PLUMB_SQLGLOT_PYTHON") else {
+        eprintln!(
+            "SKIPPED: sqlglot checks (set PLUMB_SQLGLOT_PYTHON to a Python with sqlglot and duckdb; .ci/run does)"
+        );
+        return;
+    };
+    let dir = workspace();
+    let ws = dir.path();
+    let tables: serde_json::Map<String, serde_json::Value> = ["orders", "visits", "assignments", "shoppers"]
+        .iter()
+        .map(|t| {
+            (
+                t.to_string(),
+                ws.join(format!("data/{t}.csv")).to_str().unwrap().into(),
+            )
+        })
+        .collect();
+    let columns = |t: &str| -> Vec<String> {
+        let text = std::fs::read_to_string(ws.join(format!("data/{t}.csv"))).unwrap();
+        text.lines()
+            .next()
+            .unwrap()
+            .split(',')
+            .map(str::to_string)
+            .collect()
+    };
+    let demo_schema: serde_json::Map<String, serde_json::Value> =
+        ["orders", "visits", "assignments", "shoppers"]
+            .iter()
+            .map(|t| (t.to_string(), columns(t).into()))
+            .collect();
+    let dialects = ["bigquery", "snowflake", "redshift", "trino"];
+    let mut jobs = Vec::new();
+    for dialect in dialects {
+        for exp in EXPERIMENTS {
+            jobs.push(serde_json::json!({
+                "kind": "transpile",
+                "read": dialect,
+                "sql": sql(ws, exp, dialect),
+                "tables": tables,
+                "out": ws.join(format!("{exp}.{dialect}.sqlglot.csv")),
+            }));
+        }
+    }
+    for exp in EXPERIMENTS {
+        jobs.push(
+            serde_json::json!({"kind": "qualify", "sql": sql(ws, exp, "snowflake"), "schema": demo_schema}),
+        );
+    }
+    // A catalog whose columns are SQL keywords (`at`, `exp`), which Snowflake must see quoted
+    // in upper case.
+    let every = tempfile::tempdir().unwrap();
+    let every_schema = serde_json::json!({
+        "purchases": ["user_id", "at", "status", "amount", "sku", "is_test"],
+        "sessions": ["user_id", "started_at", "duration_s"],
+        "exposures": ["user_id", "at", "exp", "variant", "platform"],
+        "users": ["user_id", "tier", "updated_at"],
+    });
+    jobs.push(serde_json::json!({
+        "kind": "qualify",
+        "sql": fixture_sql(every.path(), "every_kind.yaml", "exp", "snowflake"),
+        "schema": every_schema,
+    }));
+    std::fs::write(ws.join("jobs.json"), serde_json::to_string(&jobs).unwrap()).unwrap();
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/engines/sqlglot_checks.py");
+    let out = Command::new(python)
+        .arg(script)
+        .arg(ws.join("jobs.json"))
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "sqlglot checks failed:\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    for dialect in dialects {
+        for exp in EXPERIMENTS {
+            compare_with_duckdb(ws, exp, &ws.join(format!("{exp}.{dialect}.sqlglot.csv")));
+        }
     }
 }

@@ -16,13 +16,18 @@ pub struct PostgresEngine {
 
 impl PostgresEngine {
     pub fn connect(config: &Config) -> Result<PostgresEngine> {
-        let client = config.connect(NoTls).map_err(|e| {
+        let mut client = config.connect(NoTls).map_err(|e| {
             Error::engine(format!(
                 "cannot connect to PostgreSQL as user {} to database {}: {e}",
                 config.get_user().unwrap_or("(default)"),
                 config.get_dbname().unwrap_or("(default)")
             ))
         })?;
+        // plumb's literals are UTC: timestamptz columns and day windows must be compared in
+        // UTC whatever the server's or the user's default time zone.
+        client
+            .batch_execute("SET TIME ZONE 'UTC'")
+            .map_err(|e| Error::engine(format!("PostgreSQL: setting the session time zone to UTC: {e}")))?;
         Ok(PostgresEngine { client })
     }
 }

@@ -149,6 +149,7 @@ pub struct Capabilities {
     pub sum_input: String,
     pub backslash_escapes: bool,
     pub doubled_quotes: bool,
+    pub utc_session: String,
     pub date_trunc: String,
 }
 
@@ -172,6 +173,7 @@ struct CapabilitiesOverride {
     sum_input: Option<String>,
     backslash_escapes: Option<bool>,
     doubled_quotes: Option<bool>,
+    utc_session: Option<String>,
     date_trunc: Option<String>,
 }
 
@@ -270,6 +272,7 @@ impl Dialect {
                 sum_input,
                 backslash_escapes,
                 doubled_quotes,
+                utc_session,
                 date_trunc
             );
         }
@@ -295,7 +298,6 @@ impl Dialect {
             ("timestamp_literal", &caps.timestamp_literal),
             ("add_interval", &caps.add_interval),
             ("covar_samp", &caps.covar_samp),
-            ("percentile", &caps.percentile),
             ("sum_input", &caps.sum_input),
             ("date_trunc", &caps.date_trunc),
         ] {
@@ -427,10 +429,6 @@ impl Dialect {
         self.snippet("covar_samp", context! { a => cast(a), b => cast(b) })
     }
 
-    fn percentile(&self, expr: &str, p: f64) -> Result<String> {
-        self.snippet("percentile", context! { expr => expr, p => p })
-    }
-
     /// A conditional aggregate: `agg` over rows where `cond` holds.
     fn aggregate(&self, agg: &Aggregate, cond: Option<&str>) -> Result<String> {
         let mut value = agg.value.as_ref().map(|v| self.fragment(v)).unwrap_or_default();
@@ -521,28 +519,31 @@ impl Dialect {
         for c in &plan.columns {
             let scan = &plan.scans[c.scan].name;
             let col = self.ident(&c.column);
-            let sql = if c.zero_fill {
-                format!("coalesce({scan}.{col}, 0)")
-            } else {
-                format!("{scan}.{col}")
-            };
             let capped = match c.cap {
                 None => format!("r.{col}"),
                 Some(Cap::Absolute(v)) => {
                     format!("CASE WHEN r.{col} > {v} THEN {v} ELSE r.{col} END")
                 }
                 Some(Cap::Percentile(p)) => {
-                    let name = self.ident(&columns::cap(&c.column));
+                    let part = |suffix: &str| self.ident(&format!("{}_{suffix}", columns::cap(&c.column)));
+                    let (low, high, position) = (part("low"), part("high"), part("position"));
+                    let cap =
+                        format!("r.{low} + (r.{high} - r.{low}) * (r.{position} - floor(r.{position}))");
                     caps.push(context! {
-                        name => name,
-                        sql => self.percentile(&format!("CAST({col} AS {})", self.caps.float_type), p)?,
+                        column => col,
+                        p => format!("{p}"),
+                        rank => part("rank"),
+                        position => position,
+                        low => low,
+                        high => high,
                     });
-                    format!("CASE WHEN r.{col} > caps.{name} THEN caps.{name} ELSE r.{col} END")
+                    format!("CASE WHEN r.{col} > {cap} THEN {cap} ELSE r.{col} END")
                 }
             };
             columns.push(context! {
                 column => col,
-                sql => sql,
+                scan => scan,
+                zero_fill => c.zero_fill,
                 capped => capped,
                 n => self.ident(&columns::stat(&c.column, columns::Stat::N)),
                 mean => self.ident(&columns::stat(&c.column, columns::Stat::Mean)),
@@ -561,13 +562,13 @@ impl Dialect {
         let mut attribute_segments = Vec::new();
         for seg in &plan.segments {
             let column = self.ident(&seg.column);
-            let sql = match &seg.kind {
+            let cte = match &seg.kind {
                 PlannedSegmentKind::Exposure { column: source } => {
                     exposure_segments.push(context! {
                         column => column,
                         source_column => self.ident(source),
                     });
-                    format!("x.{column}")
+                    None
                 }
                 PlannedSegmentKind::Attribute {
                     source,
@@ -577,19 +578,21 @@ impl Dialect {
                 } => {
                     let cte = columns::segment_cte(&seg.name);
                     attribute_segments.push(self.segment_context(&cte, source, id, value, time.as_ref()));
-                    format!("{cte}.segment_value")
+                    Some(cte)
                 }
             };
             segments.push(context! {
                 column => column,
                 name => self.literal(&seg.name),
-                sql => sql,
+                exposure => cte.is_none(),
+                cte => cte,
             });
         }
         let x = &plan.exposures;
         let ctx = context! {
             experiment => plan.experiment,
             dialect => self.caps.name,
+            utc_session => self.caps.utc_session,
             float_type => self.caps.float_type,
             string_type => self.caps.string_type,
             start => self.timestamp(plan.start)?,
@@ -685,6 +688,7 @@ impl Dialect {
             metric_names => names.join(", "),
             grain => plan.grain.as_str(),
             dialect => self.caps.name,
+            utc_session => self.caps.utc_session,
             float_type => self.caps.float_type,
             string_type => self.caps.string_type,
             from => self.timestamp(plan.from)?,
@@ -733,6 +737,7 @@ impl Dialect {
         let ctx = context! {
             metric_names => plan.metrics.iter().map(|m| m.0.as_str()).collect::<Vec<_>>().join(", "),
             dialect => self.caps.name,
+            utc_session => self.caps.utc_session,
             float_type => self.caps.float_type,
             from => self.timestamp(plan.from)?,
             to => self.timestamp(plan.to)?,
