@@ -97,12 +97,14 @@ impl Context {
     /// Loads and resolves the workspace in `dir` (catalog errors: [`crate::ErrorKind::Catalog`]).
     pub fn open(dir: &Path, options: Options) -> Result<Context> {
         let mut sources = SourceMap::new();
-        let mut loaded = workspace::load(dir, &mut sources)?;
+        let mut loaded = crate::timing::stage("load workspace", || workspace::load(dir, &mut sources))?;
         if loaded.local.settings.temp_directory.is_none() {
             loaded.local.settings.temp_directory = options.spill_dir.clone();
         }
         let mut engine: Option<Box<dyn Engine>> = None;
-        let schemas = match local_schemas(&loaded.local, &options.engine, &mut engine) {
+        let schemas = match crate::timing::stage("open engine, read schemas", || {
+            local_schemas(&loaded.local, &options.engine, &mut engine)
+        }) {
             Ok(s) => s,
             Err(e) => {
                 loaded
@@ -111,7 +113,7 @@ impl Context {
                 Schemas::new()
             }
         };
-        match loaded.resolve(&sources, &schemas) {
+        match crate::timing::stage("resolve", || loaded.resolve(&sources, &schemas)) {
             Opened::Invalid(diags) => Err(Error::catalog(sources, diags)),
             Opened::Ok(ws, warnings) => Ok(Context {
                 workspace: *ws,
@@ -293,7 +295,8 @@ impl Context {
     ) -> Result<Readout> {
         let dialect = self.engine_dialect()?;
         let (plan, sql) = compile::compile_experiment(catalog, experiment, by, &dialect)?;
-        let table = execute::stats_table(&plan, &self.query_readout(&plan, &sql)?)?;
+        let rows = crate::timing::stage("readout query", || self.query_readout(&plan, &sql))?;
+        let table = execute::stats_table(&plan, &rows)?;
         let spec = compile::readout_spec(catalog, experiment, &plan, options);
         let mut readout = crate::stats::readout::build(&spec, &table);
         if options.population_impact {
@@ -337,7 +340,7 @@ impl Context {
         }
         let days = (exp.end.0 - exp.start.0) as f64 / 86_400.0;
         let sql = compile::compile_totals(&plan, dialect)?;
-        let rows = self.query(&sql)?;
+        let rows = crate::timing::stage("population totals query", || self.query(&sql))?;
         let [row] = rows.as_slice() else {
             return Err(Error::data(format!(
                 "the totals query returned {} rows, not 1",

@@ -36,6 +36,7 @@ pub mod resolve;
 pub mod source;
 pub mod stats;
 pub mod time;
+pub mod timing;
 pub mod validate;
 pub mod workspace;
 

@@ -320,10 +320,24 @@ mod readout {
             .ok_or_else(|| Error::bug("per-unit text column is not text"))
     }
 
-    fn doubles(a: &dyn Array) -> Result<&Float64Array> {
-        a.as_any()
+    /// A per-unit value column as doubles: DOUBLE as it is, integers converted here (exactly
+    /// as DuckDB's CAST to DOUBLE rounds them); wider types were cast by the reading query.
+    fn doubles(a: &dyn Array) -> Result<Float64Array> {
+        if let Some(f) = a.as_any().downcast_ref::<Float64Array>() {
+            return Ok(f.clone());
+        }
+        if !a.data_type().is_integer() {
+            return Err(Error::bug(format!(
+                "per-unit value column has type {}, not a number",
+                a.data_type()
+            )));
+        }
+        let f = duckdb::arrow::compute::cast(&a.slice(0, a.len()), &DataType::Float64)
+            .map_err(|e| Error::bug(format!("per-unit value column: {e}")))?;
+        f.as_any()
             .downcast_ref::<Float64Array>()
-            .ok_or_else(|| Error::bug("per-unit value column is not DOUBLE"))
+            .cloned()
+            .ok_or_else(|| Error::bug("per-unit value column did not convert to DOUBLE"))
     }
 
     const EXCLUSIONS: [(&str, &str); 3] = [
@@ -338,9 +352,51 @@ mod readout {
     impl LocalEngine {
         /// Runs `create` (which fills [`PER_UNIT_TABLE`]) without insertion order and reads
         /// the table back.
-        fn materialised(&self, create: &str) -> Result<Vec<duckdb::arrow::record_batch::RecordBatch>> {
-            self.conn
-                .execute_batch(&format!("SET preserve_insertion_order = false;\n{create}"))
+        /// Column types of `query`'s result, from binding it (nothing runs).
+        fn result_types(&self, query: &str) -> Result<Vec<String>> {
+            let what = |e| err("describing the per-unit rows", e);
+            let mut describe = self.conn.prepare(&format!("DESCRIBE {query}")).map_err(what)?;
+            let mut rows = describe.query([]).map_err(what)?;
+            let mut types = Vec::new();
+            while let Some(row) = rows.next().map_err(what)? {
+                types.push(row.get::<_, String>(1).map_err(what)?);
+            }
+            Ok(types)
+        }
+
+        /// Fills [`PER_UNIT_TABLE`] from `with` + `SELECT select FROM per_unit`, in parallel and
+        /// without insertion order, and reads it back. The first column and the last
+        /// `text_columns` are read as text; of the others, exact decimals and wide integers
+        /// are cast to DOUBLE in the parallel write (DuckDB's own, correctly rounded, cast),
+        /// and narrower numbers are converted while reading (`doubles`), which is cheaper.
+        fn materialised(
+            &self,
+            with: &str,
+            select: &[String],
+            text_columns: usize,
+        ) -> Result<Vec<duckdb::arrow::record_batch::RecordBatch>> {
+            let types = self.result_types(&format!("{with}\nSELECT {} FROM per_unit", select.join(", ")))?;
+            let columns: Vec<String> = select
+                .iter()
+                .zip(&types)
+                .enumerate()
+                .map(|(i, (expr, ty))| {
+                    let wide = ty.starts_with("DECIMAL")
+                        || matches!(ty.as_str(), "HUGEINT" | "UHUGEINT" | "UBIGINT");
+                    if i == 0 || i + text_columns >= select.len() {
+                        format!("CAST({expr} AS VARCHAR)")
+                    } else if wide {
+                        format!("CAST({expr} AS DOUBLE)")
+                    } else {
+                        expr.clone()
+                    }
+                })
+                .collect();
+            let create = format!(
+                "SET preserve_insertion_order = false;\nCREATE OR REPLACE TEMP TABLE {PER_UNIT_TABLE} AS\n{with}\nSELECT {} FROM per_unit",
+                columns.join(", ")
+            );
+            crate::timing::stage("per-unit table: create", || self.conn.execute_batch(&create))
                 .map_err(|e| err("running the query", e))?;
             let mut stmt = self
                 .conn
@@ -358,23 +414,21 @@ mod readout {
         pub(crate) fn local_readout(&self, plan: &ExperimentPlan, sql: &str) -> Result<Vec<NamedRow>> {
             let with = crate::execute::staged::with_clause(sql)
                 .ok_or_else(|| Error::bug("the readout statement has no WITH clause"))?;
-            let mut select = vec![format!("CAST({} AS VARCHAR)", columns::ARM)];
+            let mut select = vec![columns::ARM.to_string()];
             for (_, key) in EXCLUSIONS {
                 select.push(format!("CAST((SELECT {key} FROM exclusions) AS DOUBLE)"));
             }
             for c in &plan.columns {
-                select.push(format!("CAST({} AS DOUBLE)", ident(&c.column)));
+                select.push(ident(&c.column));
             }
             for s in &plan.segments {
-                select.push(format!("CAST({} AS VARCHAR)", ident(&s.column)));
+                select.push(ident(&s.column));
             }
             // The per-unit rows are materialised first (a parallel write, in no particular
             // order: nothing below depends on it), then read back as Arrow batches.
-            let create = format!(
-                "CREATE OR REPLACE TEMP TABLE {PER_UNIT_TABLE} AS\n{with}\nSELECT {} FROM per_unit",
-                select.join(", ")
-            );
-            let batches = self.materialised(&create);
+            let batches = crate::timing::stage("per-unit table", || {
+                self.materialised(&with, &select, plan.segments.len())
+            });
             self.conn
                 .execute_batch(&format!(
                     "DROP TABLE IF EXISTS {PER_UNIT_TABLE}; SET preserve_insertion_order = true"

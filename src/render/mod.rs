@@ -150,6 +150,7 @@ pub struct Capabilities {
     pub backslash_escapes: bool,
     pub doubled_quotes: bool,
     pub utc_session: String,
+    pub per_unit_joins: bool,
     pub date_trunc: String,
 }
 
@@ -174,6 +175,7 @@ struct CapabilitiesOverride {
     backslash_escapes: Option<bool>,
     doubled_quotes: Option<bool>,
     utc_session: Option<String>,
+    per_unit_joins: Option<bool>,
     date_trunc: Option<String>,
 }
 
@@ -273,6 +275,7 @@ impl Dialect {
                 backslash_escapes,
                 doubled_quotes,
                 utc_session,
+                per_unit_joins,
                 date_trunc
             );
         }
@@ -593,6 +596,7 @@ impl Dialect {
             experiment => plan.experiment,
             dialect => self.caps.name,
             utc_session => self.caps.utc_session,
+            per_unit_joins => self.caps.per_unit_joins,
             float_type => self.caps.float_type,
             string_type => self.caps.string_type,
             start => self.timestamp(plan.start)?,
