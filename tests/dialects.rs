@@ -73,6 +73,28 @@ fn every_dialect_parses_and_is_snapshotted_as_a_diff_against_generic() {
     }
 }
 
+/// Percentile caps are exact and portable on every dialect: no ordered-set or approximate
+/// quantile aggregate (Redshift rejects two `PERCENTILE_CONT ... WITHIN GROUP` with different
+/// orderings in one SELECT; `APPROX_QUANTILES` / `approx_percentile` are approximate), only
+/// the window-function cap, which the engine tests compare with DuckDB's `quantile_cont`.
+#[test]
+fn caps_use_no_quantile_aggregate_on_any_dialect() {
+    for (catalog, files) in catalogs() {
+        for (dialect, experiment, sql) in compile_all(&files) {
+            let lower = sql.to_ascii_lowercase();
+            for banned in ["percentile", "quantile", "approx", "within group"] {
+                assert!(
+                    !lower.contains(banned),
+                    "{catalog} {experiment} {dialect}: `{banned}` in\n{sql}"
+                );
+            }
+            if lower.contains("winsorize") || sql.contains("__cap_rank") {
+                assert!(sql.contains("row_number() OVER"), "{dialect}: exact cap missing");
+            }
+        }
+    }
+}
+
 #[test]
 fn compilation_is_deterministic() {
     for (_, files) in catalogs() {
