@@ -102,6 +102,26 @@ fn compilation_is_deterministic() {
     }
 }
 
+/// The SQL of the first experiment of a one-file catalog, in every dialect.
+fn first_experiment_in_every_dialect(catalog: &str) -> Vec<(String, Dialect, String)> {
+    let mut sources = SourceMap::new();
+    let (raw, diags) = load_catalog_texts(&[("hostile.yaml", catalog)], &mut sources);
+    assert!(
+        diags.is_empty(),
+        "{}",
+        plumb::diagnostics::render_plain(&sources, &diags)
+    );
+    let catalog = plumb::resolve::resolve(&sources, &raw).unwrap();
+    std::iter::once("generic")
+        .chain(builtin_dialects())
+        .map(|name| {
+            let dialect = Dialect::load(name, None).unwrap();
+            let (_, sql) = plumb::compile_experiment(&catalog, 0, &[], &dialect).unwrap();
+            (name.to_string(), dialect, sql)
+        })
+        .collect()
+}
+
 #[test]
 fn hostile_names_and_values_cannot_change_the_statement() {
     // Table, column, arm and experiment names with quotes, semicolons and comment markers.
@@ -136,17 +156,8 @@ experiments:
     end: 2026-01-02
     primary: [events]
 "#;
-    let mut sources = SourceMap::new();
-    let (raw, diags) = load_catalog_texts(&[("hostile.yaml", catalog)], &mut sources);
-    assert!(
-        diags.is_empty(),
-        "{}",
-        plumb::diagnostics::render_plain(&sources, &diags)
-    );
-    let catalog = plumb::resolve::resolve(&sources, &raw).unwrap();
-    for name in std::iter::once("generic").chain(builtin_dialects()) {
-        let dialect = Dialect::load(name, None).unwrap();
-        let (_, sql) = plumb::compile_experiment(&catalog, 0, &[], &dialect).unwrap();
+    for (name, dialect, sql) in first_experiment_in_every_dialect(catalog) {
+        let name = name.as_str();
         // Still exactly one statement (validate checks the count) ...
         plumb::validate::validate(&sql, &dialect.caps.sqlparser).unwrap();
         // ... and the payloads only appear inside quoted identifiers or literals.
@@ -201,17 +212,8 @@ experiments:
     end: 2026-01-02
     primary: [hits]
 "#;
-    let mut sources = SourceMap::new();
-    let (raw, diags) = load_catalog_texts(&[("hostile.yaml", catalog)], &mut sources);
-    assert!(
-        diags.is_empty(),
-        "{}",
-        plumb::diagnostics::render_plain(&sources, &diags)
-    );
-    let catalog = plumb::resolve::resolve(&sources, &raw).unwrap();
-    for name in std::iter::once("generic").chain(builtin_dialects()) {
-        let dialect = Dialect::load(name, None).unwrap();
-        let (_, sql) = plumb::compile_experiment(&catalog, 0, &[], &dialect).unwrap();
+    for (name, _, sql) in first_experiment_in_every_dialect(catalog) {
+        let name = name.as_str();
         // How the engine itself reads the text (sqlparser's tokenizer for that engine).
         let reading = match name {
             "postgres" => "postgresql",

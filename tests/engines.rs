@@ -195,6 +195,27 @@ fn compare_with_duckdb(ws: &Path, exp: &str, stats: &Path) {
     same(&local, &handed, exp);
 }
 
+/// A psql script that creates the demo's tables (time columns of type `time_type`) after
+/// `first` and loads the CSV files of `ws` into them.
+fn pg_load_script(ws: &Path, time_type: &str, first: &[String]) -> String {
+    let mut load = first.to_vec();
+    load.extend([
+        format!("CREATE TABLE shoppers (shopper_id text, region text, signed_up_at {time_type});"),
+        format!("CREATE TABLE visits (shopper_id text, visited_at {time_type}, page text);"),
+        format!("CREATE TABLE orders (order_id text, shopper_id text, ordered_at {time_type}, status text, amount_cents bigint, is_test boolean);"),
+        format!("CREATE TABLE assignments (shopper_id text, experiment text, arm text, exposed_at {time_type}, device text);"),
+    ]);
+    for t in ["shoppers", "visits", "orders", "assignments"] {
+        let path = ws.join(format!("data/{t}.csv"));
+        load.push(format!(
+            "\\copy {t} FROM '{}' WITH (FORMAT csv, HEADER true)",
+            path.display()
+        ));
+    }
+    load.push("ANALYZE;".into());
+    load.join("\n") + "\n"
+}
+
 #[test]
 fn postgresql_gives_the_same_statistics_and_readouts_as_duckdb() {
     let Ok(url) = std::env::var("PLUMB_PG_URL") else {
@@ -220,23 +241,10 @@ fn postgresql_gives_the_same_statistics_and_readouts_as_duckdb() {
         String::from_utf8(out.stdout).unwrap()
     };
     let started = std::time::Instant::now();
-    let data = |t: &str| ws.join(format!("data/{t}.csv")).display().to_string();
     psql(&["-c", &format!("DROP DATABASE IF EXISTS {db}")], false);
     psql(&["-c", &format!("CREATE DATABASE {db}")], false);
-    let mut load = vec![
-        "CREATE TABLE shoppers (shopper_id text, region text, signed_up_at timestamp);".to_string(),
-        "CREATE TABLE visits (shopper_id text, visited_at timestamp, page text);".to_string(),
-        "CREATE TABLE orders (order_id text, shopper_id text, ordered_at timestamp, status text, amount_cents bigint, is_test boolean);".to_string(),
-        "CREATE TABLE assignments (shopper_id text, experiment text, arm text, exposed_at timestamp, device text);".to_string(),
-    ];
-    for t in ["shoppers", "visits", "orders", "assignments"] {
-        load.push(format!(
-            "\\copy {t} FROM '{}' WITH (FORMAT csv, HEADER true)",
-            data(t)
-        ));
-    }
-    load.push("ANALYZE;".into());
-    std::fs::write(ws.join("load.psql"), load.join("\n") + "\n").unwrap();
+    let load = pg_load_script(ws, "timestamp", &[]);
+    std::fs::write(ws.join("load.psql"), load).unwrap();
     psql(&["-f", ws.join("load.psql").to_str().unwrap()], true);
     for exp in EXPERIMENTS {
         let q = sql(ws, exp, "postgres");
@@ -307,23 +315,15 @@ fn full_demo_on_postgresql(url: &str) {
     // Zoned time columns (timestamptz, loaded as the UTC instants the files hold) in a
     // database whose sessions default to another time zone: plumb's literals are UTC, and
     // its engine must compare them in UTC (it sets the session time zone).
-    let mut load = vec![
-        "SET TIME ZONE 'UTC';".to_string(),
-        format!("ALTER DATABASE {db} SET timezone TO 'America/New_York';"),
-        "CREATE TABLE shoppers (shopper_id text, region text, signed_up_at timestamptz);".to_string(),
-        "CREATE TABLE visits (shopper_id text, visited_at timestamptz, page text);".to_string(),
-        "CREATE TABLE orders (order_id text, shopper_id text, ordered_at timestamptz, status text, amount_cents bigint, is_test boolean);".to_string(),
-        "CREATE TABLE assignments (shopper_id text, experiment text, arm text, exposed_at timestamptz, device text);".to_string(),
-    ];
-    for t in ["shoppers", "visits", "orders", "assignments"] {
-        let path = ws.join(format!("data/{t}.csv"));
-        load.push(format!(
-            "\\copy {t} FROM '{}' WITH (FORMAT csv, HEADER true)",
-            path.display()
-        ));
-    }
-    load.push("ANALYZE;".into());
-    std::fs::write(ws.join("load.psql"), load.join("\n") + "\n").unwrap();
+    let load = pg_load_script(
+        ws,
+        "timestamptz",
+        &[
+            "SET TIME ZONE 'UTC';".to_string(),
+            format!("ALTER DATABASE {db} SET timezone TO 'America/New_York';"),
+        ],
+    );
+    std::fs::write(ws.join("load.psql"), load).unwrap();
     psql(&db_url, &["-f", ws.join("load.psql").to_str().unwrap()]);
     for exp in ["one_page_checkout", "care_guide_banner"] {
         let t = std::time::Instant::now();
@@ -349,6 +349,30 @@ fn full_demo_on_postgresql(url: &str) {
     psql(url, &["-c", &format!("DROP DATABASE {db}")]);
 }
 
+/// The demo's CSV tables in `ws`, by table name (as the engine scripts take them).
+fn demo_tables(ws: &Path) -> serde_json::Map<String, serde_json::Value> {
+    ["orders", "visits", "assignments", "shoppers"]
+        .iter()
+        .map(|t| {
+            (
+                t.to_string(),
+                ws.join(format!("data/{t}.csv")).to_str().unwrap().into(),
+            )
+        })
+        .collect()
+}
+
+/// Runs `tests/engines/<script>` on `jobs` with `python`; its stderr, or a panic naming `what`.
+fn run_script(python: &str, script: &str, jobs: &Path, what: &str) -> String {
+    let script = Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("tests/engines")
+        .join(script);
+    let out = Command::new(python).arg(script).arg(jobs).output().unwrap();
+    let stderr = String::from_utf8_lossy(&out.stderr).into_owned();
+    assert!(out.status.success(), "{what}:\n{stderr}");
+    stderr
+}
+
 #[test]
 fn spark_sql_gives_the_same_statistics_and_readouts_as_duckdb() {
     let Ok(python) = std::env::var("PLUMB_SPARK_PYTHON") else {
@@ -362,38 +386,15 @@ fn spark_sql_gives_the_same_statistics_and_readouts_as_duckdb() {
     let mut jobs = Vec::new();
     for exp in EXPERIMENTS {
         let sql = sql(ws, exp, "spark");
-        let tables: serde_json::Map<String, serde_json::Value> =
-            ["orders", "visits", "assignments", "shoppers"]
-                .iter()
-                .map(|t| {
-                    (
-                        t.to_string(),
-                        ws.join(format!("data/{t}.csv")).to_str().unwrap().into(),
-                    )
-                })
-                .collect();
+        let tables = demo_tables(ws);
         jobs.push(
             serde_json::json!({"sql": sql, "tables": tables, "out": ws.join(format!("{exp}.stats.csv"))}),
         );
     }
     std::fs::write(ws.join("jobs.json"), serde_json::to_string(&jobs).unwrap()).unwrap();
-    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/engines/spark_stats.py");
     let started = std::time::Instant::now();
-    let out = Command::new(python)
-        .arg(script)
-        .arg(ws.join("jobs.json"))
-        .output()
-        .unwrap();
-    assert!(
-        out.status.success(),
-        "spark failed:\n{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    eprintln!(
-        "{}spark total {:.1}s",
-        String::from_utf8_lossy(&out.stderr),
-        started.elapsed().as_secs_f64()
-    );
+    let stderr = run_script(&python, "spark_stats.py", &ws.join("jobs.json"), "spark failed");
+    eprintln!("{}spark total {:.1}s", stderr, started.elapsed().as_secs_f64());
     for exp in EXPERIMENTS {
         compare_with_duckdb(ws, exp, &ws.join(format!("{exp}.stats.csv")));
     }
@@ -416,16 +417,7 @@ fn datafusion_gives_the_same_statistics_and_readouts_as_duckdb() {
     for dialect in dialects {
         for exp in EXPERIMENTS {
             let sql = sql(ws, exp, dialect);
-            let tables: serde_json::Map<String, serde_json::Value> =
-                ["orders", "visits", "assignments", "shoppers"]
-                    .iter()
-                    .map(|t| {
-                        (
-                            t.to_string(),
-                            ws.join(format!("data/{t}.csv")).to_str().unwrap().into(),
-                        )
-                    })
-                    .collect();
+            let tables = demo_tables(ws);
             jobs.push(serde_json::json!({
                 "sql": sql,
                 "tables": tables,
@@ -434,18 +426,13 @@ fn datafusion_gives_the_same_statistics_and_readouts_as_duckdb() {
         }
     }
     std::fs::write(ws.join("jobs.json"), serde_json::to_string(&jobs).unwrap()).unwrap();
-    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/engines/datafusion_stats.py");
-    let out = Command::new(python)
-        .arg(script)
-        .arg(ws.join("jobs.json"))
-        .output()
-        .unwrap();
-    assert!(
-        out.status.success(),
-        "datafusion failed:\n{}",
-        String::from_utf8_lossy(&out.stderr)
+    let stderr = run_script(
+        &python,
+        "datafusion_stats.py",
+        &ws.join("jobs.json"),
+        "datafusion failed",
     );
-    eprintln!("{}", String::from_utf8_lossy(&out.stderr));
+    eprintln!("{stderr}");
     for dialect in dialects {
         for exp in EXPERIMENTS {
             compare_with_duckdb(ws, exp, &ws.join(format!("{exp}.{dialect}.datafusion.csv")));
@@ -477,15 +464,7 @@ fn transpiled_dialects_give_duckdbs_numbers_and_snowflake_names_resolve_in_upper
     };
     let dir = workspace();
     let ws = dir.path();
-    let tables: serde_json::Map<String, serde_json::Value> = ["orders", "visits", "assignments", "shoppers"]
-        .iter()
-        .map(|t| {
-            (
-                t.to_string(),
-                ws.join(format!("data/{t}.csv")).to_str().unwrap().into(),
-            )
-        })
-        .collect();
+    let tables = demo_tables(ws);
     let columns = |t: &str| -> Vec<String> {
         let text = std::fs::read_to_string(ws.join(format!("data/{t}.csv"))).unwrap();
         text.lines()
@@ -533,16 +512,11 @@ fn transpiled_dialects_give_duckdbs_numbers_and_snowflake_names_resolve_in_upper
         "schema": every_schema,
     }));
     std::fs::write(ws.join("jobs.json"), serde_json::to_string(&jobs).unwrap()).unwrap();
-    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/engines/sqlglot_checks.py");
-    let out = Command::new(python)
-        .arg(script)
-        .arg(ws.join("jobs.json"))
-        .output()
-        .unwrap();
-    assert!(
-        out.status.success(),
-        "sqlglot checks failed:\n{}",
-        String::from_utf8_lossy(&out.stderr)
+    run_script(
+        &python,
+        "sqlglot_checks.py",
+        &ws.join("jobs.json"),
+        "sqlglot checks failed",
     );
     for dialect in dialects {
         for exp in EXPERIMENTS {
