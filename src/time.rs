@@ -57,7 +57,8 @@ impl Timestamp {
             }
             part.parse::<i64>().map_err(|_| bad())
         };
-        if s.len() < 10 || s.as_bytes()[4] != b'-' || s.as_bytes()[7] != b'-' {
+        // Every form is ASCII; checking it first makes each byte-index slice below safe.
+        if !s.is_ascii() || s.len() < 10 || s.as_bytes()[4] != b'-' || s.as_bytes()[7] != b'-' {
             return Err(bad());
         }
         let (y, m, d) = (num(&s[0..4])?, num(&s[5..7])?, num(&s[8..10])?);
@@ -132,13 +133,19 @@ pub fn parse_duration(text: &str) -> Result<i64, String> {
     if s == "0" {
         return Ok(0);
     }
+    // ASCII first, so that splitting off the last byte is a character boundary.
+    if !s.is_ascii() {
+        return Err(bad());
+    }
     let (num, unit) = s.split_at(s.len().saturating_sub(1));
     let n: i64 = num.parse().map_err(|_| bad())?;
-    match unit {
-        "d" => Ok(n * DAY),
-        "h" => Ok(n * 3600),
-        _ => Err(bad()),
-    }
+    // A duration beyond i64 seconds is a typo, never a wrapped-around number.
+    let seconds = match unit {
+        "d" => n.checked_mul(DAY),
+        "h" => n.checked_mul(3600),
+        _ => return Err(bad()),
+    };
+    seconds.ok_or_else(bad)
 }
 
 /// Writes seconds back in the unit a person would use (`14d`, `36h`, `90s`).
@@ -155,6 +162,32 @@ pub fn format_duration(seconds: i64) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Text that is not ASCII (or too long a number) is an error, never a panic: these once
+    /// sliced a string inside a character or overflowed.
+    #[test]
+    fn hostile_timestamps_and_durations_are_errors() {
+        for text in [
+            "2026-03-1é",
+            "2026-03-01Té0:00",
+            "2026-03-01T00:00+0é",
+            "é026-03-01",
+            "2026-03-01 ００:00",
+        ] {
+            assert!(Timestamp::parse(text).is_err(), "{text}");
+        }
+        for text in [
+            "14é",
+            "é",
+            "1ád",
+            "99999999999999999999d",
+            "9223372036854775807d",
+            "-9223372036854775807h",
+        ] {
+            assert!(parse_duration(text).is_err(), "{text}");
+        }
+        assert_eq!(parse_duration("14d"), Ok(14 * DAY));
+    }
 
     #[test]
     fn parses_and_formats_utc() {

@@ -355,3 +355,32 @@ fn segments_on_a_dialect_without_grouping_sets_is_a_located_error() {
     );
     assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
 }
+
+/// Hostile text in flags and files gives a located error with the right exit code, never a
+/// panic (exit 101): a non-ASCII date once sliced a string inside a character, and a catalog
+/// file that is not UTF-8 was reported as an I/O failure (exit 2) without a location.
+#[test]
+fn non_ascii_dates_and_non_utf8_catalogs_are_clear_errors() {
+    let body = std::fs::read_to_string(fixtures().join("ok_minimal.yaml")).unwrap();
+    let ws = workspace(&[("ok.yaml", &body)]);
+    for from in ["2026-03-1é", "é026-03-01", "2026-03-01T0é:00"] {
+        let out = plumb(
+            ws.path(),
+            &["report", "paid_orders", "--from", from, "--to", "2026-04-01"],
+        );
+        assert_eq!(out.status.code(), Some(2), "--from {from}: {}", text(&out.stderr));
+        assert!(
+            text(&out.stderr).contains("is not a timestamp"),
+            "{}",
+            text(&out.stderr)
+        );
+    }
+    let mut bytes = b"units:\n  - name: u".to_vec();
+    bytes.extend([0xff, 0xfe, b'\n']);
+    std::fs::write(ws.path().join("metrics/latin1.yaml"), bytes).unwrap();
+    let out = plumb(ws.path(), &["check"]);
+    assert_eq!(out.status.code(), Some(1), "{}", text(&out.stderr));
+    let stderr = text(&out.stderr);
+    assert!(stderr.contains("latin1.yaml:2:12"), "located: {stderr}");
+    assert!(stderr.contains("not UTF-8"), "{stderr}");
+}

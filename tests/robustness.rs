@@ -51,6 +51,13 @@ proptest! {
         load_and_resolve(&text);
     }
 
+    /// Timestamps and durations from flags and YAML: any text at all, non-ASCII included.
+    #[test]
+    fn arbitrary_times_and_durations_never_panic(text in "\\PC{0,24}") {
+        let _ = plumb::time::Timestamp::parse(&text);
+        let _ = plumb::time::parse_duration(&text);
+    }
+
     #[test]
     fn mutated_catalog_never_panics(pos in 0usize..2000, insert in "[:\\-\\[\\]{}'\" \na-z0-9]{1,4}") {
         let base = plumb::demo::CATALOG[0].1;

@@ -148,9 +148,32 @@ pub fn load_workspace(
     paths.sort();
     let mut catalog = RawCatalog::default();
     for path in paths {
-        let text = std::fs::read_to_string(&path).map_err(|e| LoadError::Io(path.clone(), e))?;
-        let id = sources.add(display_path(&path), text);
-        parse_catalog_file(sources, id, &mut catalog, &mut diags);
+        let bytes = std::fs::read(&path).map_err(|e| LoadError::Io(path.clone(), e))?;
+        match String::from_utf8(bytes) {
+            Ok(text) => {
+                let id = sources.add(display_path(&path), text);
+                parse_catalog_file(sources, id, &mut catalog, &mut diags);
+            }
+            // A catalog file that is not UTF-8 is a catalog error at the first bad byte (the
+            // valid text before it is kept so the caret can point there), not an I/O failure.
+            Err(e) => {
+                let valid = e.utf8_error().valid_up_to();
+                let text = String::from_utf8_lossy(&e.as_bytes()[..valid]).into_owned();
+                let id = sources.add(display_path(&path), text);
+                diags.push(
+                    Diagnostic::error(
+                        "E001",
+                        format!(
+                            "{} is not UTF-8 text (byte 0x{:02x})",
+                            path.display(),
+                            e.as_bytes()[valid]
+                        ),
+                    )
+                    .at(Some(crate::source::Span::new(id, valid..valid)))
+                    .hint("save the file as UTF-8; catalog files are YAML, which is UTF-8"),
+                );
+            }
+        }
     }
     Ok((ws, catalog, diags))
 }
