@@ -67,7 +67,14 @@ pub struct ReadoutOptions {
     /// Add whole-population impact (one more query: the report of the experiment's count and
     /// sum metrics over its period).
     pub population_impact: bool,
+    /// The most values one segment may have in a readout: a segment with more is almost
+    /// always an id (every unit its own slice), whose readout would take very long and say
+    /// nothing.
+    pub max_segment_values: usize,
 }
+
+/// Default of [`ReadoutOptions::max_segment_values`] (`analyze --max-segment-values`).
+pub const MAX_SEGMENT_VALUES: usize = 1_000;
 
 impl Default for ReadoutOptions {
     fn default() -> Self {
@@ -76,6 +83,7 @@ impl Default for ReadoutOptions {
             cuped: true,
             sequential: false,
             population_impact: false,
+            max_segment_values: MAX_SEGMENT_VALUES,
         }
     }
 }

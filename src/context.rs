@@ -297,6 +297,7 @@ impl Context {
         let (plan, sql) = compile::compile_experiment(catalog, experiment, by, &dialect)?;
         let rows = crate::timing::stage("readout query", || self.query_readout(&plan, &sql))?;
         let table = execute::stats_table(&plan, &rows)?;
+        check_segment_sizes(&table, options.max_segment_values)?;
         let spec = compile::readout_spec(catalog, experiment, &plan, options);
         let mut readout = crate::stats::readout::build(&spec, &table);
         if options.population_impact {
@@ -317,6 +318,7 @@ impl Context {
         let rows = execute::read_stats_file(file)?;
         execute::check_fingerprint(&plan, &rows)?;
         let table = execute::stats_table(&plan, &rows)?;
+        check_segment_sizes(&table, options.max_segment_values)?;
         let spec = compile::readout_spec(self.catalog(), experiment, &plan, options);
         Ok(crate::stats::readout::build(&spec, &table))
     }
@@ -463,6 +465,24 @@ fn local_schemas(
     }
     let _ = (choice, &engine);
     workspace::local_schemas(&local.present())
+}
+
+/// Stops before the statistics when a segment has more values than `max` (counted over every
+/// arm), naming the segment and its size.
+fn check_segment_sizes(table: &crate::stats::readout::StatsTable, max: usize) -> Result<()> {
+    let mut values: BTreeMap<&str, std::collections::BTreeSet<Option<&str>>> = BTreeMap::new();
+    for row in &table.rows {
+        if let Some((name, value)) = &row.segment {
+            values.entry(name).or_default().insert(value.as_deref());
+        }
+    }
+    match values.iter().find(|(_, v)| v.len() > max) {
+        Some((name, v)) => Err(Error::data(format!(
+            "segment `{name}` has {} values in this readout, more than the limit of {max}: a segment with that many values is usually an id rather than a grouping; slice by a coarser attribute, or raise the limit with --max-segment-values",
+            v.len()
+        ))),
+        None => Ok(()),
+    }
 }
 
 fn open_engine(choice: &EngineChoice, ws: &Workspace) -> Result<Box<dyn Engine>> {

@@ -384,3 +384,46 @@ fn non_ascii_dates_and_non_utf8_catalogs_are_clear_errors() {
     assert!(stderr.contains("latin1.yaml:2:12"), "located: {stderr}");
     assert!(stderr.contains("not UTF-8"), "{stderr}");
 }
+
+/// A segment whose values are unit ids (every unit its own slice) once made `analyze --by`
+/// run for a very long time; it is refused, naming the segment, its size and the limit.
+#[test]
+fn a_segment_with_too_many_values_is_refused_with_its_size() {
+    let dir = tempfile::tempdir().unwrap();
+    plumb::demo::write_demo(
+        dir.path(),
+        &plumb::demo::DemoConfig {
+            seed: 3,
+            shoppers: 2_000,
+        },
+    )
+    .unwrap();
+    std::fs::write(
+        dir.path().join("metrics/by_id.yaml"),
+        "segments:\n  - name: shopper_itself\n    unit: shopper\n    table: shoppers\n    id: shopper_id\n    value: shopper_id\n",
+    )
+    .unwrap();
+    let out = plumb(
+        dir.path(),
+        &["analyze", "one_page_checkout", "--by", "shopper_itself"],
+    );
+    assert_eq!(out.status.code(), Some(2), "{}", text(&out.stderr));
+    let stderr = text(&out.stderr);
+    assert!(stderr.contains("segment `shopper_itself` has"), "{stderr}");
+    assert!(stderr.contains("limit of 1000"), "{stderr}");
+    // A coarse segment is unaffected, and the limit can be lowered below it.
+    let out = plumb(dir.path(), &["analyze", "one_page_checkout", "--by", "region"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let out = plumb(
+        dir.path(),
+        &[
+            "analyze",
+            "one_page_checkout",
+            "--by",
+            "region",
+            "--max-segment-values",
+            "2",
+        ],
+    );
+    assert_eq!(out.status.code(), Some(2), "{}", text(&out.stderr));
+}

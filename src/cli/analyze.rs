@@ -34,6 +34,9 @@ pub struct AnalyzeArgs {
     /// PGPORT, PGUSER, PGDATABASE, PGPASSWORD or the password file (PGPASSFILE, ~/.pgpass).
     #[arg(long, value_name = "URL", conflicts_with = "stats")]
     engine: Option<String>,
+    /// The most values one segment may have (more is usually an id, not a grouping).
+    #[arg(long, value_name = "N", default_value_t = crate::compile::MAX_SEGMENT_VALUES)]
+    max_segment_values: usize,
 }
 
 /// Where the statistics table comes from.
@@ -73,6 +76,7 @@ impl Settings {
                 sequential: a.sequential,
                 // Whole-population impact needs the population's data: local runs only, so far.
                 population_impact: local,
+                max_segment_values: a.max_segment_values,
             },
             format: a.format,
             source,
