@@ -25,6 +25,21 @@ pub const FINGERPRINT: &str = "plumb_fingerprint";
 /// Result column: the statistics layout version (see `plan::STATS_LAYOUT`).
 pub const LAYOUT: &str = "plumb_layout";
 
+/// Column names of plumb's own per-unit and statistics tables, which no metric may take
+/// (metric names become per-unit columns).
+pub const RESERVED: &[&str] = &[
+    "unit_id",
+    ARM,
+    SEGMENT_NAME,
+    SEGMENT_VALUE,
+    UNITS,
+    EXCLUDED_MULTIPLE_ARMS,
+    EXCLUDED_MISSING_ARM,
+    EXCLUDED_ROWS_WITHOUT_UNIT,
+    FINGERPRINT,
+    LAYOUT,
+];
+
 /// The per-unit column of an event metric: the metric's own name.
 pub fn metric(name: &str) -> String {
     name.to_string()

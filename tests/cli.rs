@@ -427,3 +427,23 @@ fn a_segment_with_too_many_values_is_refused_with_its_size() {
     );
     assert_eq!(out.status.code(), Some(2), "{}", text(&out.stderr));
 }
+
+/// A metric named `orders__pre` beside `orders` once read the other's column (and became
+/// `orders`' CUPED covariate); names that can equal a derived or fixed column are refused.
+#[test]
+fn names_that_collide_with_generated_columns_are_refused() {
+    let body = std::fs::read_to_string(fixtures().join("ok_minimal.yaml")).unwrap();
+    let extra = "  - name: paid_orders__pre\n    events: orders\n    per_unit: count\n  - name: arm\n    events: orders\n    per_unit: count\n";
+    let body = body.replacen("metrics:\n", &format!("metrics:\n{extra}"), 1);
+    let ws = workspace(&[("ok.yaml", &body)]);
+    let out = plumb(ws.path(), &["check"]);
+    assert_eq!(out.status.code(), Some(1), "{}", text(&out.stderr));
+    let stderr = text(&out.stderr);
+    assert!(
+        stderr.contains("metric name `paid_orders__pre` contains `__`"),
+        "{stderr}"
+    );
+    assert!(stderr.contains("write `paid_orders_pre`"), "{stderr}");
+    assert!(stderr.contains("metric name `arm` is reserved"), "{stderr}");
+    assert!(stderr.contains("ok.yaml:2:"), "located: {stderr}");
+}

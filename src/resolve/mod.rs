@@ -212,6 +212,32 @@ impl Resolver<'_> {
                         )),
                 );
             }
+            // Metric and segment names become per-unit columns, and plumb derives more columns
+            // from them with `__` (`orders__pre`, `orders__n`, `segment__region`) beside fixed
+            // ones (`arm`, `units`): a name that could equal a derived or fixed column would
+            // silently read the other's values.
+            if matches!(kind, "metric" | "segment") && name.contains("__") {
+                let mut fixed = name.clone();
+                while fixed.contains("__") {
+                    fixed = fixed.replace("__", "_");
+                }
+                self.push(
+                    Diagnostic::error("E019", format!("{kind} name `{name}` contains `__`"))
+                        .at(item.value_span("name"))
+                        .hint(format!(
+                            "plumb reserves `__` for the columns it derives from names (such as `orders__pre`, `orders__n`); write `{fixed}`"
+                        )),
+                );
+            }
+            if kind == "metric" && crate::columns::RESERVED.contains(&name.as_str()) {
+                self.push(
+                    Diagnostic::error("E019", format!("metric name `{name}` is reserved"))
+                        .at(item.value_span("name"))
+                        .hint(format!(
+                            "`{name}` is a column of plumb's own per-unit and statistics tables; rename the metric, e.g. `{name}_metric`"
+                        )),
+                );
+            }
             if let Some(prev) = first.get(name) {
                 self.push(
                     Diagnostic::error("E011", format!("duplicate {kind} name `{name}`"))
