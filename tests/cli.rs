@@ -447,3 +447,56 @@ fn names_that_collide_with_generated_columns_are_refused() {
     assert!(stderr.contains("metric name `arm` is reserved"), "{stderr}");
     assert!(stderr.contains("ok.yaml:2:"), "located: {stderr}");
 }
+
+/// Catalogs arrive through pull requests and `diff --data` runs them in CI: a fragment must
+/// not read files outside the workspace's declared data.
+#[test]
+fn fragments_cannot_read_files_outside_the_declared_data() {
+    let dir = tempfile::tempdir().unwrap();
+    plumb::demo::write_demo(
+        dir.path(),
+        &plumb::demo::DemoConfig {
+            seed: 4,
+            shoppers: 1_000,
+        },
+    )
+    .unwrap();
+    let secret = dir.path().join("secret.txt");
+    std::fs::write(&secret, "s3cret-value").unwrap();
+    let metrics = dir.path().join("metrics/plant_shop.yaml");
+    let catalog = std::fs::read_to_string(&metrics).unwrap();
+    let catalog = catalog.replacen(
+        "secondary: [revenue, avg_basket, page_views, engaged]",
+        "secondary: [revenue, avg_basket, page_views, engaged, leak]",
+        1,
+    );
+    std::fs::write(&metrics, catalog).unwrap();
+    for (of, what) in [
+        (
+            format!(
+                "(SELECT max(length(t.content)) FROM read_text('{}') AS t)",
+                secret.display()
+            ),
+            "read_text",
+        ),
+        (
+            format!("(SELECT count(*) FROM read_csv('{}') AS t)", secret.display()),
+            "read_csv",
+        ),
+        (
+            "(SELECT count(*) FROM read_parquet('/etc/*.parquet') AS t)".to_string(),
+            "a glob elsewhere",
+        ),
+    ] {
+        std::fs::write(
+            dir.path().join("metrics/leak.yaml"),
+            format!("metrics:\n  - name: leak\n    events: orders\n    per_unit: max\n    of: \"{of}\"\n"),
+        )
+        .unwrap();
+        let out = plumb(dir.path(), &["analyze", "one_page_checkout", "--format", "json"]);
+        let all = format!("{}{}", text(&out.stdout), text(&out.stderr));
+        assert_eq!(out.status.code(), Some(2), "{what}: {all}");
+        assert!(all.contains("outside the workspace's data"), "{what}: {all}");
+        assert!(!all.contains("s3cret-value"), "{what}: {all}");
+    }
+}

@@ -75,11 +75,15 @@ fn readouts_on_parquet_ndjson_globs_and_a_duckdb_file_equal_the_csv_ones() {
     let (_, csv_report, _) = plumb(&ws, &report_args);
 
     // Convert the CSV files with DuckDB itself: the same columns and types in every format.
-    let engine = LocalEngine::open(
-        None,
-        &TABLES.map(|t| (t.to_string(), data.join(format!("{t}.csv")))),
-    )
-    .unwrap();
+    let engine = LocalEngine::open_for_writing().unwrap();
+    for t in TABLES {
+        engine
+            .execute_batch(&format!(
+                "CREATE VIEW {t} AS SELECT * FROM read_csv('{}', header = true)",
+                data.join(format!("{t}.csv")).display()
+            ))
+            .unwrap();
+    }
     std::fs::create_dir_all(data.join("orders_parts")).unwrap();
     let mut copy = String::new();
     for t in TABLES {
@@ -199,7 +203,19 @@ fn nothing_is_downloaded_and_settings_reach_duckdb() {
         memory_limit: Some("1GB".into()),
         temp_directory: Some(tmp.path().join("spill")),
     };
-    let engine = LocalEngine::open_with(None, &[], &settings).unwrap();
+    // A Parquet and an NDJSON table, written by an unrestricted engine, read by the locked one.
+    let writer = LocalEngine::open_for_writing().unwrap();
+    let parquet = tmp.path().join("t.parquet");
+    let ndjson = tmp.path().join("t.ndjson");
+    writer
+        .execute_batch(&format!(
+            "COPY (SELECT 1 AS a) TO '{}' (FORMAT parquet); COPY (SELECT 2 AS a) TO '{}' (FORMAT json);",
+            parquet.display(),
+            ndjson.display()
+        ))
+        .unwrap();
+    let tables = [("p".to_string(), parquet), ("j".to_string(), ndjson)];
+    let engine = LocalEngine::open_with(None, &tables, &settings).unwrap();
     let setting = |name: &str| match &engine
         .query(&format!("SELECT CAST(current_setting('{name}') AS VARCHAR) AS v"))
         .unwrap()[0]["v"]
@@ -217,11 +233,11 @@ fn nothing_is_downloaded_and_settings_reach_duckdb() {
         setting("memory_limit")
     );
     assert!(setting("temp_directory").ends_with("spill"));
-    // The readers are compiled in: loaded without any network access.
-    let loaded = engine
-        .query("SELECT count(*) AS n FROM duckdb_extensions() WHERE loaded AND extension_name IN ('parquet', 'json')")
-        .unwrap();
-    assert_eq!(loaded[0]["n"], Cell::Number(2.0));
+    // The readers are compiled in: they work with autoloading off and every file or network
+    // access outside the declared tables refused (even listing the extension folder is).
+    let rows = engine.query("SELECT (SELECT sum(a) FROM p) + (SELECT sum(a) FROM j) AS n").unwrap();
+    assert_eq!(rows[0]["n"], Cell::Number(3.0));
+    assert!(engine.query("SELECT count(*) AS n FROM duckdb_extensions()").is_err());
 }
 
 #[test]
@@ -259,4 +275,33 @@ fn local_settings_are_checked_with_located_errors() {
     let (code, _, err) = plumb(&ws, &["analyze", "one_page_checkout"]);
     assert_eq!(code, Some(2), "{err}");
     assert!(err.contains("is a folder"), "{err}");
+}
+
+/// The engine that runs catalog SQL reads only the declared tables: writing files,
+/// attaching databases, installing extensions and reading other files all fail, and
+/// external access cannot be switched back on.
+#[test]
+fn the_local_engine_reaches_nothing_but_the_declared_data() {
+    let dir = tempfile::tempdir().unwrap();
+    let data = dir.path().join("t.csv");
+    std::fs::write(&data, "a,b\n1,2\n").unwrap();
+    std::fs::write(dir.path().join("other.csv"), "x\n1\n").unwrap();
+    let engine = LocalEngine::open(None, &[("t".to_string(), data.clone())]).unwrap();
+    assert_eq!(engine.query("SELECT count(*) AS n FROM t").unwrap().len(), 1);
+    let other = dir.path().join("other.csv").display().to_string();
+    let out = dir.path().join("out.csv").display().to_string();
+    for sql in [
+        format!("SELECT * FROM read_csv('{other}')"),
+        format!("SELECT * FROM read_text('{other}')"),
+        format!("COPY (SELECT 1) TO '{out}'"),
+        format!("ATTACH '{}' AS x", dir.path().join("x.duckdb").display()),
+        "INSTALL httpfs".to_string(),
+        "LOAD httpfs".to_string(),
+        "SET enable_external_access = true".to_string(),
+    ] {
+        assert!(engine.execute_batch(&sql).is_err(), "allowed: {sql}");
+    }
+    assert!(!dir.path().join("out.csv").exists());
+    // Still readable after all that.
+    assert_eq!(engine.query("SELECT count(*) AS n FROM t").unwrap().len(), 1);
 }

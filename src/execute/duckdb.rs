@@ -27,6 +27,13 @@ pub struct LocalEngine {
 }
 
 fn err(context: &str, e: duckdb::Error) -> Error {
+    if e.to_string().contains("disabled by configuration") {
+        // `lock_down`: catalog SQL reached for something outside the declared data.
+        return Error::data(format!(
+            "{context}: the SQL tried to read or write a file, folder or address outside the workspace's data; plumb's local engine reads only the tables and database named under `local:` in plumb.yaml ({e})"
+        ))
+        .with_source(e);
+    }
     Error::engine(format!("{context}: {e}")).with_source(e)
 }
 
@@ -111,7 +118,73 @@ impl LocalEngine {
         for (name, path) in tables {
             engine.register(name, path)?;
         }
+        engine.lock_down(database, tables, settings)?;
         Ok(engine)
+    }
+
+    /// An in-memory engine that may read and write any file: for generating data files in
+    /// tests and tools, never for running a catalog's SQL.
+    pub fn open_for_writing() -> Result<LocalEngine> {
+        let conn = Connection::open_in_memory().map_err(|e| err("starting DuckDB", e))?;
+        Ok(LocalEngine { conn, threads: 1 })
+    }
+
+    /// From here on the engine reads only the workspace's declared data (the files, the
+    /// folders of globs, the spill folder): a catalog fragment such as
+    /// `(SELECT content FROM read_text('/etc/passwd'))` fails, and so do `COPY ... TO`,
+    /// `ATTACH`, `INSTALL`/`LOAD` and other file or network access. DuckDB refuses to turn
+    /// external access back on while the database runs; catalog SQL is expressions and one
+    /// SELECT per event table, so it cannot issue `SET` at all.
+    fn lock_down(
+        &self,
+        database: Option<&Path>,
+        tables: &[(String, PathBuf)],
+        settings: &LocalSettings,
+    ) -> Result<()> {
+        let abs = |p: &Path| std::path::absolute(p).unwrap_or_else(|_| p.to_path_buf());
+        let mut paths: Vec<String> = Vec::new();
+        let mut dirs: Vec<String> = Vec::new();
+        for (_, path) in tables {
+            let path = abs(path);
+            if is_glob(&path) {
+                // The folder up to the first component with a wildcard.
+                let mut dir = PathBuf::new();
+                for part in path.components() {
+                    let text = part.as_os_str().to_string_lossy();
+                    if text.contains(['*', '?', '[', '{']) {
+                        break;
+                    }
+                    dir.push(part);
+                }
+                dirs.push(format!("{}/", dir.to_string_lossy().trim_end_matches('/')));
+            } else {
+                paths.push(path.to_string_lossy().into_owned());
+            }
+        }
+        if let Some(db) = database {
+            paths.push(abs(db).to_string_lossy().into_owned());
+        }
+        let temp: String = match &settings.temp_directory {
+            Some(dir) => abs(dir).to_string_lossy().into_owned(),
+            None => self
+                .conn
+                .query_row("SELECT current_setting('temp_directory')", [], |r| r.get(0))
+                .map_err(|e| err("configuring DuckDB", e))?,
+        };
+        if !temp.is_empty() {
+            dirs.push(format!(
+                "{}/",
+                abs(Path::new(&temp)).to_string_lossy().trim_end_matches('/')
+            ));
+        }
+        let list = |items: &[String]| items.iter().map(|i| literal(i)).collect::<Vec<_>>().join(", ");
+        self.conn
+            .execute_batch(&format!(
+                "SET allowed_paths = [{}]; SET allowed_directories = [{}]; SET enable_external_access = false;",
+                list(&paths),
+                list(&dirs)
+            ))
+            .map_err(|e| err("restricting DuckDB to the workspace's data", e))
     }
 
     /// Makes a CSV, Parquet, JSON or NDJSON file (or glob of them) visible as view `name`.
@@ -144,7 +217,9 @@ impl LocalEngine {
                 path.display()
             )));
         }
-        let Some(reader) = reader(path) else {
+        // Absolute, as the engine's list of readable files has it (see `lock_down`).
+        let absolute = std::path::absolute(path).unwrap_or_else(|_| path.to_path_buf());
+        let Some(reader) = reader(&absolute) else {
             return Err(Error::data(format!(
                 "local table `{name}`: {} is not .csv, .tsv, .parquet, .json, .ndjson or .jsonl (optionally .gz)",
                 path.display()
