@@ -235,9 +235,15 @@ fn nothing_is_downloaded_and_settings_reach_duckdb() {
     assert!(setting("temp_directory").ends_with("spill"));
     // The readers are compiled in: they work with autoloading off and every file or network
     // access outside the declared tables refused (even listing the extension folder is).
-    let rows = engine.query("SELECT (SELECT sum(a) FROM p) + (SELECT sum(a) FROM j) AS n").unwrap();
+    let rows = engine
+        .query("SELECT (SELECT sum(a) FROM p) + (SELECT sum(a) FROM j) AS n")
+        .unwrap();
     assert_eq!(rows[0]["n"], Cell::Number(3.0));
-    assert!(engine.query("SELECT count(*) AS n FROM duckdb_extensions()").is_err());
+    assert!(
+        engine
+            .query("SELECT count(*) AS n FROM duckdb_extensions()")
+            .is_err()
+    );
 }
 
 #[test]
