@@ -500,3 +500,30 @@ fn fragments_cannot_read_files_outside_the_declared_data() {
         assert!(!all.contains("s3cret-value"), "{what}: {all}");
     }
 }
+
+/// `--alpha 1e-300` once gave null intervals: levels outside 1e-6..0.5 are usage errors.
+#[test]
+fn significance_levels_outside_a_sane_range_are_refused() {
+    let body = std::fs::read_to_string(fixtures().join("ok_minimal.yaml")).unwrap();
+    let ws = workspace(&[("ok.yaml", &body)]);
+    for alpha in ["1e-300", "0", "0.7", "NaN", "-0.05"] {
+        let flag = format!("--alpha={alpha}");
+        let out = plumb(ws.path(), &["analyze", "checkout", &flag]);
+        assert_eq!(out.status.code(), Some(2), "--alpha {alpha}");
+        assert!(
+            text(&out.stderr).contains("--alpha must be between 0.000001 and 0.5"),
+            "{}",
+            text(&out.stderr)
+        );
+        let out = plumb(
+            ws.path(),
+            &["power", "paid_orders", "--mde", "5%", "--alpha", alpha],
+        );
+        assert_eq!(
+            out.status.code(),
+            Some(2),
+            "power --alpha {alpha}: {}",
+            text(&out.stderr)
+        );
+    }
+}

@@ -4,7 +4,7 @@
 use super::{EXIT_CHECKS, Format, Global, Outcome};
 use crate::ReadoutOptions;
 use crate::context::EngineChoice;
-use crate::error::{Error, Result};
+use crate::error::Result;
 use crate::stats::readout::Readout;
 use std::path::PathBuf;
 
@@ -55,12 +55,7 @@ pub struct Settings {
 
 impl Settings {
     pub fn from_args(a: AnalyzeArgs) -> Result<Settings> {
-        if !(a.alpha > 0.0 && a.alpha < 1.0) {
-            return Err(Error::usage(format!(
-                "--alpha must be between 0 and 1, got {}",
-                a.alpha
-            )));
-        }
+        super::check_alpha(a.alpha)?;
         let source = match (a.stats, a.engine) {
             (Some(file), _) => Source::StatsFile(file),
             (None, Some(url)) => Source::Engine(postgres_engine(&url)?),

@@ -237,6 +237,18 @@ fn json(value: &impl serde::Serialize) -> Result<String> {
         .map_err(|e| Error::bug(format!("output does not serialise: {e}")))
 }
 
+/// Checks a significance level: `--alpha` from 1e-6 to 0.5. Smaller levels make intervals
+/// overflow double precision (null intervals at 1e-300) and larger ones are not a test.
+pub fn check_alpha(alpha: f64) -> crate::error::Result<()> {
+    if (1e-6..=0.5).contains(&alpha) {
+        Ok(())
+    } else {
+        Err(crate::error::Error::usage(format!(
+            "--alpha must be between 0.000001 and 0.5 (e.g. 0.05 for 95% intervals), got {alpha}"
+        )))
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

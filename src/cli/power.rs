@@ -72,8 +72,9 @@ impl Settings {
                     a.mde
                 ))
             })?;
-        if !(a.alpha > 0.0 && a.alpha < 1.0 && a.power > 0.0 && a.power < 1.0) {
-            return Err(Error::usage("--alpha and --power must be between 0 and 1"));
+        super::check_alpha(a.alpha)?;
+        if !(a.power > 0.0 && a.power < 1.0) {
+            return Err(Error::usage("--power must be between 0 and 1, e.g. 0.8"));
         }
         if a.split.len() < 2 || a.split.iter().any(|s| !s.is_finite() || *s <= 0.0) {
             return Err(Error::usage(
