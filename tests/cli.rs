@@ -37,6 +37,13 @@ fn text(bytes: &[u8]) -> String {
     String::from_utf8_lossy(bytes).into_owned()
 }
 
+/// The demo workspace with `shoppers` shoppers, in a temporary folder.
+fn small_demo(seed: u64, shoppers: usize) -> tempfile::TempDir {
+    let dir = tempfile::tempdir().unwrap();
+    plumb::demo::write_demo(dir.path(), &plumb::demo::DemoConfig { seed, shoppers }).unwrap();
+    dir
+}
+
 #[test]
 fn check_errors_are_located_and_snapshotted() {
     insta::glob!("fixtures/err_*.yaml", |path| {
@@ -389,15 +396,7 @@ fn non_ascii_dates_and_non_utf8_catalogs_are_clear_errors() {
 /// run for a very long time; it is refused, naming the segment, its size and the limit.
 #[test]
 fn a_segment_with_too_many_values_is_refused_with_its_size() {
-    let dir = tempfile::tempdir().unwrap();
-    plumb::demo::write_demo(
-        dir.path(),
-        &plumb::demo::DemoConfig {
-            seed: 3,
-            shoppers: 2_000,
-        },
-    )
-    .unwrap();
+    let dir = small_demo(3, 2_000);
     std::fs::write(
         dir.path().join("metrics/by_id.yaml"),
         "segments:\n  - name: shopper_itself\n    unit: shopper\n    table: shoppers\n    id: shopper_id\n    value: shopper_id\n",
@@ -452,15 +451,7 @@ fn names_that_collide_with_generated_columns_are_refused() {
 /// not read files outside the workspace's declared data.
 #[test]
 fn fragments_cannot_read_files_outside_the_declared_data() {
-    let dir = tempfile::tempdir().unwrap();
-    plumb::demo::write_demo(
-        dir.path(),
-        &plumb::demo::DemoConfig {
-            seed: 4,
-            shoppers: 1_000,
-        },
-    )
-    .unwrap();
+    let dir = small_demo(4, 1_000);
     let secret = dir.path().join("secret.txt");
     std::fs::write(&secret, "s3cret-value").unwrap();
     let metrics = dir.path().join("metrics/plant_shop.yaml");

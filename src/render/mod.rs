@@ -280,6 +280,13 @@ impl Dialect {
             );
         }
         caps.name = name.to_string();
+        // Printed inside a `--` comment of every query header: a line break would end the
+        // comment and make the rest SQL.
+        if caps.utc_session.chars().any(char::is_control) {
+            return Err(Error::dialect(format!(
+                "dialect {name}: `utc_session` must be one line without control characters"
+            )));
+        }
         if !caps.doubled_quotes && !caps.backslash_escapes {
             return Err(Error::dialect(format!(
                 "dialect {name}: `doubled_quotes: false` needs `backslash_escapes: true` (a quote inside a literal is then escaped with a backslash)"
@@ -838,6 +845,19 @@ mod tests {
         );
         assert_eq!(d.ident("status"), "\"STATUS\"");
         assert_eq!(d.ident("Region"), "\"Region\"");
+    }
+
+    #[test]
+    fn a_dialect_folder_cannot_break_out_of_the_header_comment() {
+        let dir = tempfile::tempdir().unwrap();
+        std::fs::create_dir_all(dir.path().join("evil")).unwrap();
+        std::fs::write(
+            dir.path().join("evil/dialect.yaml"),
+            "utc_session: \"SET TIME ZONE 'UTC'\\nDROP TABLE orders; --\"\n",
+        )
+        .unwrap();
+        let e = Dialect::load("evil", Some(dir.path())).unwrap_err();
+        assert!(e.to_string().contains("utc_session"), "{e}");
     }
 
     #[test]
