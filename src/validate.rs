@@ -6,10 +6,18 @@
 use sqlparser::dialect::dialect_from_str;
 use sqlparser::parser::Parser;
 
+/// The nesting depth a generated statement may reach: the templates' own levels plus
+/// fragments of at most [`crate::resolve::sql::MAX_DEPTH`] levels each.
+pub const MAX_DEPTH: usize = 128;
+
 /// Parses `sql` with the sqlparser dialect `dialect` and checks it is exactly one statement.
 pub fn validate(sql: &str, dialect: &str) -> Result<(), String> {
     let d = dialect_from_str(dialect).ok_or_else(|| format!("sqlparser has no dialect `{dialect}`"))?;
-    let statements = Parser::parse_sql(d.as_ref(), sql).map_err(|e| e.to_string())?;
+    let statements = Parser::new(d.as_ref())
+        .with_recursion_limit(MAX_DEPTH)
+        .try_with_sql(sql)
+        .and_then(|mut p| p.parse_statements())
+        .map_err(|e| e.to_string())?;
     match statements.len() {
         1 => Ok(()),
         n => Err(format!("expected one statement, found {n}")),

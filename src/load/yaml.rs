@@ -68,6 +68,15 @@ pub struct SyntaxError {
     pub message: String,
 }
 
+/// The deepest nesting of lists and mappings a file may have. A catalog needs five levels
+/// (`metrics:` → item → `window:` → bound); deeper input is refused before anything recurses
+/// over it (100k nested `- - - ...` once overflowed the stack).
+pub const MAX_DEPTH: usize = 64;
+
+/// The most values that aliases (`*name`) may add to a file when expanded. An anchor of a
+/// 20k-element list referenced 20k times is 4e8 values: refused here, before serde expands it.
+pub const MAX_ALIAS_VALUES: u64 = 100_000;
+
 /// Parses `text` into a positioned tree. An empty document gives `Ok(None)`.
 pub fn parse(text: &str) -> Result<Option<Node>, SyntaxError> {
     let mut builder = Builder {
@@ -75,12 +84,29 @@ pub fn parse(text: &str) -> Result<Option<Node>, SyntaxError> {
         char_to_byte: CharIndex::new(text),
         stack: Vec::new(),
         root: None,
+        counts: Vec::new(),
+        anchors: std::collections::HashMap::new(),
+        literal: 0,
+        expanded: 0,
+        refused: None,
     };
+    // Events are pulled one by one (the parser's own `load` recurses once per nesting level,
+    // so deep input would overflow the stack before the depth check could refuse it).
     let mut parser = Parser::new_from_str(text);
-    parser.load(&mut builder, false).map_err(|e| SyntaxError {
-        offset: builder.char_to_byte.byte(e.marker().index()),
-        message: e.info().to_string(),
-    })?;
+    loop {
+        let (ev, mark) = parser.next_token().map_err(|e| SyntaxError {
+            offset: builder.char_to_byte.byte(e.marker().index()),
+            message: e.info().to_string(),
+        })?;
+        let last = matches!(ev, Event::DocumentEnd | Event::StreamEnd);
+        builder.on_event(ev, mark);
+        if let Some(e) = builder.refused.take() {
+            return Err(e);
+        }
+        if last {
+            break;
+        }
+    }
     Ok(builder.root)
 }
 
@@ -116,9 +142,42 @@ struct Builder<'a> {
     char_to_byte: CharIndex,
     stack: Vec<Frame>,
     root: Option<Node>,
+    /// Per open list or mapping: its anchor id (0: none) and its size with aliases expanded.
+    counts: Vec<(usize, u64)>,
+    /// Expanded size of each anchored value.
+    anchors: std::collections::HashMap<usize, u64>,
+    /// Values as written, and with aliases expanded.
+    literal: u64,
+    expanded: u64,
+    /// Set when the input is too deep or expands too much; later events are ignored.
+    refused: Option<SyntaxError>,
 }
 
 impl Builder<'_> {
+    /// Adds a completed value of expanded size `size` to its parent's count.
+    fn count(&mut self, anchor: usize, size: u64, at: usize) {
+        if anchor > 0 {
+            self.anchors.insert(anchor, size);
+        }
+        match self.counts.last_mut() {
+            Some((_, parent)) => *parent = parent.saturating_add(size),
+            None => self.expanded = self.expanded.saturating_add(size),
+        }
+        let pending: u64 = self
+            .counts
+            .iter()
+            .map(|c| c.1)
+            .fold(self.expanded, u64::saturating_add);
+        if pending.saturating_sub(self.literal) > MAX_ALIAS_VALUES {
+            self.refused = Some(SyntaxError {
+                offset: at,
+                message: format!(
+                    "aliases expand this file to more than {MAX_ALIAS_VALUES} values more than it holds; write the values out, or reuse less"
+                ),
+            });
+        }
+    }
+
     fn push_node(&mut self, node: Node) {
         match self.stack.last_mut() {
             None => self.root = Some(node),
@@ -169,21 +228,61 @@ impl Builder<'_> {
 
 impl MarkedEventReceiver for Builder<'_> {
     fn on_event(&mut self, ev: Event, mark: Marker) {
+        if self.refused.is_some() {
+            return;
+        }
         let at = self.char_to_byte.byte(mark.index());
+        if matches!(ev, Event::SequenceStart(..) | Event::MappingStart(..)) && self.stack.len() >= MAX_DEPTH {
+            self.refused = Some(SyntaxError {
+                offset: at,
+                message: format!(
+                    "lists and mappings are nested more than {MAX_DEPTH} levels deep here; a catalog needs a handful"
+                ),
+            });
+            return;
+        }
         match ev {
-            Event::Scalar(value, style, _, _) => {
+            Event::Scalar(value, style, anchor, _) => {
                 let range = self.scalar_range(at, &value, style);
+                self.literal += 1;
+                self.count(anchor, 1, at);
                 self.push_node(Node {
                     range,
                     kind: NodeKind::Scalar(value),
                 });
             }
-            Event::Alias(_) => self.push_node(Node {
-                range: at..at + 1,
-                kind: NodeKind::Alias,
-            }),
-            Event::SequenceStart(..) => self.stack.push(Frame::Seq(at, Vec::new())),
-            Event::MappingStart(..) => self.stack.push(Frame::Map(at, Vec::new(), None)),
+            Event::Alias(id) => {
+                let size = self.anchors.get(&id).copied().unwrap_or(1);
+                self.count(0, size, at);
+                self.push_node(Node {
+                    range: at..at + 1,
+                    kind: NodeKind::Alias,
+                })
+            }
+            Event::SequenceStart(anchor, _) => {
+                self.literal += 1;
+                self.counts.push((anchor, 1));
+                self.stack.push(Frame::Seq(at, Vec::new()))
+            }
+            Event::MappingStart(anchor, _) => {
+                self.literal += 1;
+                self.counts.push((anchor, 1));
+                self.stack.push(Frame::Map(at, Vec::new(), None))
+            }
+            Event::SequenceEnd | Event::MappingEnd => {
+                if let Some((anchor, size)) = self.counts.pop() {
+                    self.count(anchor, size, at);
+                }
+                self.close(ev);
+            }
+            _ => {}
+        }
+    }
+}
+
+impl Builder<'_> {
+    fn close(&mut self, ev: Event) {
+        match ev {
             Event::SequenceEnd => {
                 if let Some(Frame::Seq(start, items)) = self.stack.pop() {
                     let end = items.last().map(|n| n.range.end).unwrap_or(start + 1).max(start);
@@ -225,6 +324,22 @@ mod tests {
         assert_eq!(&text[item.key_range("per_unit").unwrap()], "per_unit");
         let w = item.at(&[Seg::Key("window".into()), Seg::Index(1)]).unwrap();
         assert_eq!(&text[w.range.clone()], "14d");
+    }
+
+    #[test]
+    fn refuses_deep_nesting_and_alias_bombs_before_expanding_them() {
+        let deep = format!("units:\n{}x\n", "- ".repeat(100_000));
+        let e = parse(&deep).unwrap_err();
+        assert!(e.message.contains("nested more than 64"), "{}", e.message);
+        let ok = format!("units:\n{}x\n", "- ".repeat(MAX_DEPTH - 2));
+        assert!(parse(&ok).is_ok());
+        let list = vec!["1"; 20_000].join(",");
+        let refs = vec!["*a"; 20_000].join(",");
+        let bomb = format!("x: &a [{list}]\ny: [{refs}]\n");
+        let e = parse(&bomb).unwrap_err();
+        assert!(e.message.contains("aliases expand"), "{}", e.message);
+        // A few reuses of a small anchor are fine.
+        assert!(parse("x: &w [0d, 7d]\ny: *w\nz: *w\n").is_ok());
     }
 
     #[test]

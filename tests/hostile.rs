@@ -1,0 +1,299 @@
+//! The hostile-input corpus: one line per case of what hostile catalogs, workspace files, data
+//! and flags must produce (exit code and a phrase of the message), run on a small demo
+//! workspace with the `plumb` binary. No case may panic (exit 101), abort, hang or print a
+//! readout it should have refused. Add a line here for every hostile input found.
+#![cfg(feature = "engine")]
+
+use std::path::Path;
+use std::process::Command;
+use std::time::Duration;
+
+/// How a case changes the demo workspace before running.
+enum Edit {
+    /// Replace the first occurrence of a text in a file (the text must be there).
+    Replace(&'static str, &'static str, String),
+    /// Write (or overwrite) a file.
+    Write(&'static str, Vec<u8>),
+    /// Anything else.
+    Run(fn(&Path)),
+}
+
+struct Case {
+    name: &'static str,
+    edit: Vec<Edit>,
+    args: Vec<String>,
+    exit: i32,
+    /// Must appear in stderr (or stdout when the exit code is 0).
+    says: &'static str,
+}
+
+const CATALOG: &str = "metrics/plant_shop.yaml";
+
+fn replace(old: &'static str, new: impl Into<String>) -> Edit {
+    Edit::Replace(CATALOG, old, new.into())
+}
+
+fn write(path: &'static str, text: impl Into<Vec<u8>>) -> Edit {
+    Edit::Write(path, text.into())
+}
+
+fn case(name: &'static str, edit: Vec<Edit>, args: &str, exit: i32, says: &'static str) -> Case {
+    Case {
+        name,
+        edit,
+        args: args.split_whitespace().map(String::from).collect(),
+        exit,
+        says,
+    }
+}
+
+fn cases() -> Vec<Case> {
+    let bomb = format!(
+        "x: &a [{}]\ny: [{}]\n",
+        vec!["1"; 20_000].join(","),
+        vec!["*a"; 20_000].join(",")
+    );
+    let ors = (0..200_000)
+        .map(|i| format!("amount_cents = {i}"))
+        .collect::<Vec<_>>()
+        .join(" OR ");
+    let parens = |n: usize| format!("where: \"{}status = 'refunded'{}\"", "(".repeat(n), ")".repeat(n));
+    let refunds = "where: \"status = 'refunded'\"";
+    vec![
+        // Crashes, hangs and resource blow-ups.
+        case(
+            "yaml alias bomb",
+            vec![write("metrics/bomb.yaml", bomb)],
+            "check",
+            1,
+            "aliases expand this file",
+        ),
+        case(
+            "100k nested block sequences",
+            vec![write(
+                "metrics/deep.yaml",
+                format!("units:\n{}x\n", "- ".repeat(100_000)),
+            )],
+            "check",
+            1,
+            "nested more than 64 levels",
+        ),
+        case(
+            "100k nested flow sequences",
+            vec![write(
+                "metrics/deep.yaml",
+                format!("units: {}{}\n", "[".repeat(100_000), "]".repeat(100_000)),
+            )],
+            "check",
+            1,
+            "metrics/deep.yaml:1:",
+        ),
+        case(
+            "200k OR-ed comparisons",
+            vec![replace(refunds, format!("where: \"{ors}\""))],
+            "check",
+            1,
+            "more than 500 operators",
+        ),
+        case(
+            "46 parentheses",
+            vec![replace(refunds, parens(46))],
+            "check",
+            1,
+            "nested more than 24 levels deep",
+        ),
+        case(
+            "24 parentheses run",
+            vec![replace(refunds, parens(24))],
+            "analyze one_page_checkout",
+            0,
+            "Experiment one_page_checkout",
+        ),
+        case(
+            "500 additions run",
+            vec![replace(
+                "of: \"amount_cents / 100.0\"",
+                format!("of: \"amount_cents{}\"", " + 1".repeat(500)),
+            )],
+            "analyze one_page_checkout",
+            0,
+            "Experiment one_page_checkout",
+        ),
+        case(
+            "non-ASCII --from",
+            vec![],
+            "report orders --from 2026-03-1é --to 2026-04-01",
+            2,
+            "is not a timestamp",
+        ),
+        case(
+            "non-ASCII window",
+            vec![replace("window: [0d, 7d]", "window: [0d, 7д]")],
+            "check",
+            1,
+            "bad window bound",
+        ),
+        case(
+            "non-UTF-8 catalog",
+            vec![write(
+                "metrics/latin1.yaml",
+                b"units:\n  - name: u\xff\n".to_vec(),
+            )],
+            "check",
+            1,
+            "not UTF-8",
+        ),
+        // Integer overflow.
+        case(
+            "window overflow",
+            vec![replace("window: [0d, 7d]", "window: [0d, 144115188075855879d]")],
+            "check",
+            1,
+            "144115188075855879d",
+        ),
+        case(
+            "covariate window overflow",
+            vec![replace(
+                "covariate_window: 14d",
+                "covariate_window: 144115188075855879d",
+            )],
+            "check",
+            1,
+            "144115188075855879d",
+        ),
+        // Flags.
+        case(
+            "alpha 1e-300",
+            vec![],
+            "analyze one_page_checkout --alpha 1e-300",
+            2,
+            "--alpha must be between",
+        ),
+        // Values.
+        case(
+            "negative winsorize",
+            vec![replace("winsorize: 99.9%", "winsorize: -5%")],
+            "check",
+            1,
+            "the percentile must be above 50%",
+        ),
+        // Reading what it should not.
+        case(
+            "data-modifying CTE in sql:",
+            vec![replace(
+                "    table: orders\n",
+                "    sql: \"WITH d AS (DELETE FROM orders RETURNING *) SELECT * FROM d\"\n",
+            )],
+            "check",
+            1,
+            "only a query that reads data",
+        ),
+    ]
+}
+
+fn run(case: &Case) -> Result<(), String> {
+    let dir = tempfile::tempdir().unwrap();
+    plumb::demo::write_demo(
+        dir.path(),
+        &plumb::demo::DemoConfig {
+            seed: 5,
+            shoppers: 1_500,
+        },
+    )
+    .unwrap();
+    for edit in &case.edit {
+        match edit {
+            Edit::Replace(file, old, new) => {
+                let path = dir.path().join(file);
+                let text = std::fs::read_to_string(&path).unwrap();
+                assert!(text.contains(old), "{}: `{old}` is not in {file}", case.name);
+                std::fs::write(&path, text.replacen(old, new, 1)).unwrap();
+            }
+            Edit::Write(file, bytes) => {
+                let path = dir.path().join(file);
+                std::fs::create_dir_all(path.parent().unwrap()).unwrap();
+                std::fs::write(path, bytes).unwrap();
+            }
+            Edit::Run(f) => f(dir.path()),
+        }
+    }
+    let mut child = Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .current_dir(dir.path())
+        .args(["--workspace", "."])
+        .args(&case.args)
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    // Output is drained while waiting (a full pipe would block the child), and a hang is a
+    // failure, not a stuck test run.
+    let (mut o, mut e) = (child.stdout.take().unwrap(), child.stderr.take().unwrap());
+    let drain_out = std::thread::spawn(move || {
+        let mut v = Vec::new();
+        std::io::Read::read_to_end(&mut o, &mut v).map(|_| v)
+    });
+    let drain_err = std::thread::spawn(move || {
+        let mut v = Vec::new();
+        std::io::Read::read_to_end(&mut e, &mut v).map(|_| v)
+    });
+    let deadline = std::time::Instant::now() + Duration::from_secs(60);
+    let status = loop {
+        if let Some(status) = child.try_wait().unwrap() {
+            break status;
+        }
+        if std::time::Instant::now() > deadline {
+            child.kill().unwrap();
+            return Err(format!("{}: still running after 60 s", case.name));
+        }
+        std::thread::sleep(Duration::from_millis(20));
+    };
+    let out = std::process::Output {
+        status,
+        stdout: drain_out.join().unwrap().unwrap(),
+        stderr: drain_err.join().unwrap().unwrap(),
+    };
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    let code = out.status.code();
+    let shown = if case.exit == 0 { &stdout } else { &stderr };
+    if code != Some(case.exit) || !shown.contains(case.says) {
+        let cut = |s: &str| s.chars().take(1500).collect::<String>();
+        return Err(format!(
+            "{}: expected exit {} saying `{}`, got {code:?}\n--- stdout\n{}\n--- stderr\n{}",
+            case.name,
+            case.exit,
+            case.says,
+            cut(&stdout),
+            cut(&stderr)
+        ));
+    }
+    if stderr.contains("panicked") || stderr.contains("a bug in plumb") {
+        return Err(format!("{}: {}", case.name, stderr));
+    }
+    Ok(())
+}
+
+#[test]
+fn every_hostile_case_gives_its_exit_code_and_message() {
+    let cases = cases();
+    let mut names = std::collections::BTreeSet::new();
+    for c in &cases {
+        assert!(names.insert(c.name), "duplicate case name {}", c.name);
+    }
+    // Two at a time: the cases are independent workspaces.
+    let failures: Vec<String> = std::thread::scope(|s| {
+        let chunks: Vec<_> = cases.chunks(cases.len().div_ceil(2)).collect();
+        let handles: Vec<_> = chunks
+            .into_iter()
+            .map(|chunk| s.spawn(move || chunk.iter().filter_map(|c| run(c).err()).collect::<Vec<_>>()))
+            .collect();
+        handles.into_iter().flat_map(|h| h.join().unwrap()).collect()
+    });
+    assert!(
+        failures.is_empty(),
+        "{} of {} cases failed:\n\n{}",
+        failures.len(),
+        cases.len(),
+        failures.join("\n\n")
+    );
+}
