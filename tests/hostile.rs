@@ -177,6 +177,67 @@ fn cases() -> Vec<Case> {
             1,
             "the percentile must be above 50%",
         ),
+        case(
+            "split shares overflow",
+            vec![replace(
+                "split: {control: 50, treatment: 50}",
+                "split: {control: 1e308, treatment: 1e308}",
+            )],
+            "check",
+            1,
+            "add up to more than a number can hold",
+        ),
+        case(
+            "dialect outside the dialect folders",
+            vec![Edit::Replace(
+                "plumb.yaml",
+                "dialect: duckdb",
+                "dialect: ../evil".into(),
+            )],
+            "check",
+            2,
+            "is not a dialect name",
+        ),
+        case(
+            "dialect flag outside the dialect folders",
+            vec![],
+            "sql one_page_checkout --dialect ../../etc",
+            2,
+            "is not a dialect name",
+        ),
+        case(
+            "symlink loop in the catalog",
+            vec![Edit::Run(|d| {
+                std::os::unix::fs::symlink("..", d.join("metrics/loop")).unwrap()
+            })],
+            "check",
+            1,
+            "outside the catalog folder",
+        ),
+        case(
+            "symlink back into the catalog",
+            vec![Edit::Run(|d| {
+                std::os::unix::fs::symlink(".", d.join("metrics/again")).unwrap()
+            })],
+            "check",
+            1,
+            "read already (a loop",
+        ),
+        // Terminal escapes in data reach the screen escaped.
+        case(
+            "escape sequences in a segment value",
+            vec![Edit::Run(|d| {
+                edit_data(
+                    d,
+                    "data/shoppers.csv",
+                    ",north,",
+                    ",north\x1b]0;pwned\x07\x1b[2J,",
+                )
+            })],
+            "analyze one_page_checkout --by region",
+            0,
+            "north\\u001b]0;pwned\\u0007\\u001b[2J",
+        ),
         // Reading what it should not.
         case(
             "data-modifying CTE in sql:",
@@ -189,6 +250,14 @@ fn cases() -> Vec<Case> {
             "only a query that reads data",
         ),
     ]
+}
+
+/// Replaces every occurrence of `old` in a data file.
+fn edit_data(dir: &Path, file: &str, old: &str, new: &str) {
+    let path = dir.join(file);
+    let text = std::fs::read_to_string(&path).unwrap();
+    assert!(text.contains(old), "`{old}` is not in {file}");
+    std::fs::write(&path, text.replace(old, new)).unwrap();
 }
 
 fn run(case: &Case) -> Result<(), String> {

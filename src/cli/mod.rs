@@ -167,8 +167,8 @@ pub fn run() -> ExitCode {
         Ok(outcome) => {
             for part in outcome.parts {
                 match part {
-                    Part::Stdout(text) => emit(&text),
-                    Part::Stderr(text) => eprint!("{text}"),
+                    Part::Stdout(text) => emit(&terminal_safe(&text)),
+                    Part::Stderr(text) => eprint!("{}", terminal_safe(&text)),
                 }
             }
             ExitCode::from(outcome.code)
@@ -180,8 +180,32 @@ pub fn run() -> ExitCode {
 /// Prints an error and returns its exit code.
 fn report_error(e: &Error) -> u8 {
     let (text, code) = render_error(e);
-    eprint!("{text}");
+    eprint!("{}", terminal_safe(&text));
     code
+}
+
+/// Everything plumb prints passes through here: control characters other than newline and
+/// tab (a segment value holding `ESC]0;...BEL` or `ESC[2J` once reached the terminal raw),
+/// and the characters that reorder text on screen (bidirectional overrides), are written as
+/// `\u001b`-style escapes. In JSON output (whose strings serde_json has already escaped,
+/// except DEL and the C1 controls) that is the same value, spelled with a JSON escape.
+pub fn terminal_safe(text: &str) -> std::borrow::Cow<'_, str> {
+    let unsafe_char = |c: char| {
+        (c.is_control() && c != '\n' && c != '\t')
+            || matches!(c, '\u{202a}'..='\u{202e}' | '\u{2066}'..='\u{2069}')
+    };
+    if !text.chars().any(unsafe_char) {
+        return std::borrow::Cow::Borrowed(text);
+    }
+    let mut out = String::with_capacity(text.len() + 16);
+    for c in text.chars() {
+        if unsafe_char(c) {
+            out.push_str(&format!("\\u{:04x}", c as u32));
+        } else {
+            out.push(c);
+        }
+    }
+    std::borrow::Cow::Owned(out)
 }
 
 /// What an error prints and its exit code: the one place that maps kinds to codes.
@@ -251,6 +275,24 @@ pub fn check_alpha(alpha: f64) -> crate::error::Result<()> {
 
 #[cfg(test)]
 mod tests {
+    #[test]
+    fn control_characters_never_reach_the_terminal_raw() {
+        let hostile = "north\u{1b}]0;pwned\u{7}\u{1b}[2J\r\u{9b}\u{202e}x\n\tok";
+        let safe = super::terminal_safe(hostile);
+        assert_eq!(
+            safe,
+            "north\\u001b]0;pwned\\u0007\\u001b[2J\\u000d\\u009b\\u202ex\n\tok"
+        );
+        // In JSON the escape is the same value.
+        let json = serde_json::to_string(&"a\u{1b}b\u{7f}").unwrap();
+        let back: String = serde_json::from_str(&super::terminal_safe(&json)).unwrap();
+        assert_eq!(back, "a\u{1b}b\u{7f}");
+        assert!(matches!(
+            super::terminal_safe("plain"),
+            std::borrow::Cow::Borrowed(_)
+        ));
+    }
+
     use super::*;
 
     /// The documented exit codes, one per error kind, decided in one place.

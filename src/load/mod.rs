@@ -134,7 +134,8 @@ pub fn load_workspace(
     let catalog_dir = ws.catalog_dir();
     let mut paths = Vec::new();
     if catalog_dir.is_dir() {
-        collect_yaml(&catalog_dir, &mut paths).map_err(|e| LoadError::Io(catalog_dir.clone(), e))?;
+        collect_yaml(&catalog_dir, &mut paths, &mut diags)
+            .map_err(|e| LoadError::Io(catalog_dir.clone(), e))?;
     } else {
         diags.push(
             Diagnostic::error(
@@ -197,16 +198,61 @@ fn display_path(path: &Path) -> PathBuf {
     }
 }
 
-fn collect_yaml(dir: &Path, out: &mut Vec<PathBuf>) -> std::io::Result<()> {
-    for entry in std::fs::read_dir(dir)? {
-        let path = entry?.path();
-        if path.is_dir() {
-            collect_yaml(&path, out)?;
-        } else if matches!(
-            path.extension().and_then(|e| e.to_str()),
-            Some("yaml") | Some("yml")
-        ) {
-            out.push(path);
+/// The catalog files under `dir`, in any sub-folder. Symbolic links are followed only while
+/// they stay inside the catalog folder and reach a file or folder not read yet: a link back up
+/// (`metrics/loop -> ..`) once read the catalog again and again, hundreds of duplicate names.
+fn collect_yaml(dir: &Path, out: &mut Vec<PathBuf>, diags: &mut Vec<Diagnostic>) -> std::io::Result<()> {
+    let root = std::fs::canonicalize(dir)?;
+    let mut seen = std::collections::BTreeSet::from([root.clone()]);
+    let mut pending = vec![dir.to_path_buf()];
+    while let Some(dir) = pending.pop() {
+        let mut entries: Vec<PathBuf> = std::fs::read_dir(&dir)?
+            .map(|e| e.map(|e| e.path()))
+            .collect::<std::io::Result<_>>()?;
+        entries.sort();
+        for path in entries {
+            let is_dir = path.is_dir();
+            let yaml = matches!(
+                path.extension().and_then(|e| e.to_str()),
+                Some("yaml") | Some("yml")
+            );
+            if !is_dir && !yaml {
+                continue;
+            }
+            let Ok(real) = std::fs::canonicalize(&path) else {
+                diags.push(Diagnostic::error(
+                    "E005",
+                    format!("{} is a link to nothing; remove it", path.display()),
+                ));
+                continue;
+            };
+            if !real.starts_with(&root) {
+                diags.push(Diagnostic::error(
+                    "E005",
+                    format!(
+                        "{} links to {}, outside the catalog folder; catalog files must live inside it",
+                        path.display(),
+                        real.display()
+                    ),
+                ));
+                continue;
+            }
+            if !seen.insert(real) {
+                // The same folder or file reached a second time through a link (a loop).
+                diags.push(Diagnostic::error(
+                    "E005",
+                    format!(
+                        "{} links to a file or folder of the catalog that is read already (a loop, or the same file twice); remove the link",
+                        path.display()
+                    ),
+                ));
+                continue;
+            }
+            if is_dir {
+                pending.push(path);
+            } else {
+                out.push(path);
+            }
         }
     }
     Ok(())

@@ -238,6 +238,18 @@ impl VisitorMut for Reemit<'_> {
 impl Dialect {
     /// Loads dialect `name`, looking in `user_dir` first, then the built-in folders.
     pub fn load(name: &str, user_dir: Option<&Path>) -> Result<Dialect> {
+        // A name is a folder name, never a path: `../evil` must not load files from outside
+        // the dialect folders.
+        if name.is_empty()
+            || !name
+                .chars()
+                .all(|c| c.is_ascii_alphanumeric() || c == '_' || c == '-')
+        {
+            return Err(Error::usage(format!(
+                "`{name}` is not a dialect name; names are letters, digits, `_` and `-` (built in: {}), and --dialects-dir adds folders of that name",
+                builtin_dialects().join(", ")
+            )));
+        }
         if !dialect_exists(user_dir, name) {
             return Err(Error::usage(format!(
                 "unknown dialect `{name}`; built in: {}",

@@ -843,6 +843,15 @@ impl Resolver<'_> {
             ),
             Some(split) => {
                 let total: f64 = split.0.iter().map(|(_, s)| *s).sum();
+                if !total.is_finite() && split.0.iter().all(|(_, s)| s.is_finite()) {
+                    // Each share is a number but their sum overflows: every normalised share
+                    // would be 0 and the sample-ratio check would be skipped.
+                    self.push(
+                        Diagnostic::error("E018", "the shares in `split` add up to more than a number can hold")
+                            .at(item.value_span("split"))
+                            .hint("write shares as percentages or small weights, e.g. `split: {control: 50, treatment: 50}`"),
+                    );
+                }
                 for (arm, share) in &split.0 {
                     if !(share.is_finite() && *share > 0.0) {
                         self.push(
