@@ -238,6 +238,160 @@ fn cases() -> Vec<Case> {
             0,
             "north\\u001b]0;pwned\\u0007\\u001b[2J",
         ),
+        // Statistics files with impossible numbers: every cell is checked.
+        case(
+            "stats file: NaN mean",
+            vec![Edit::Run(|d| {
+                stats(d, "one_page_checkout", |r| set(&mut r[0], "orders__mean", "NaN"))
+            })],
+            STATS,
+            2,
+            "column `orders__mean`: NaN is not a finite mean",
+        ),
+        case(
+            "stats file: infinite variance",
+            vec![Edit::Run(|d| {
+                stats(d, "one_page_checkout", |r| set(&mut r[1], "orders__var", "inf"))
+            })],
+            STATS,
+            2,
+            "column `orders__var`: inf is not a finite variance",
+        ),
+        case(
+            "stats file: negative variance",
+            vec![Edit::Run(|d| {
+                stats(d, "one_page_checkout", |r| set(&mut r[0], "revenue__var", "-5"))
+            })],
+            STATS,
+            2,
+            "-5 is a negative variance",
+        ),
+        case(
+            "stats file: n above units",
+            vec![Edit::Run(|d| {
+                stats(d, "one_page_checkout", |r| set(&mut r[0], "orders__n", "999999"))
+            })],
+            STATS,
+            2,
+            "more than the arm's",
+        ),
+        case(
+            "stats file: 0/1 mean of 1.7",
+            vec![Edit::Run(|d| {
+                stats(d, "one_page_checkout", |r| set(&mut r[0], "bought__mean", "1.7"))
+            })],
+            STATS,
+            2,
+            "must lie between 0 and 1",
+        ),
+        case(
+            "stats file: covariance beyond Cauchy-Schwarz",
+            vec![Edit::Run(|d| {
+                stats(d, "one_page_checkout", |r| {
+                    set(&mut r[0], "revenue__cov__orders", "1e12")
+                })
+            })],
+            STATS,
+            2,
+            "by Cauchy–Schwarz",
+        ),
+        case(
+            "stats file: units 1e30",
+            vec![Edit::Run(|d| {
+                stats(d, "one_page_checkout", |r| set(&mut r[0], "units", "1e30"))
+            })],
+            STATS,
+            2,
+            "more than any table holds",
+        ),
+        case(
+            "stats file: duplicated arm row",
+            vec![Edit::Run(|d| {
+                stats(d, "one_page_checkout", |r| r.push(r[0].clone()))
+            })],
+            STATS,
+            2,
+            "a second row for this arm and the overall row",
+        ),
+        case(
+            "stats file: segment row without segments",
+            vec![Edit::Run(|d| {
+                stats(d, "care_guide_banner", |r| {
+                    let mut x = r[0].clone();
+                    x.insert("segment_name".into(), plumb::execute::Cell::Text("region".into()));
+                    x.insert("segment_value".into(), plumb::execute::Cell::Text("north".into()));
+                    r.push(x);
+                    for row in r.iter_mut() {
+                        row.entry("segment_name".into())
+                            .or_insert(plumb::execute::Cell::Null);
+                        row.entry("segment_value".into())
+                            .or_insert(plumb::execute::Cell::Null);
+                    }
+                })
+            })],
+            "analyze care_guide_banner --stats stats.csv",
+            2,
+            "read without segments",
+        ),
+        case(
+            "stats file: byte-order mark",
+            vec![Edit::Run(|d| {
+                stats(d, "one_page_checkout", |_| {});
+                let p = d.join("stats.csv");
+                let t = std::fs::read_to_string(&p).unwrap();
+                std::fs::write(p, format!("\u{feff}{t}")).unwrap()
+            })],
+            STATS,
+            0,
+            "Experiment one_page_checkout",
+        ),
+        // Labels are text end to end.
+        case(
+            "arm labels 007",
+            vec![
+                replace(
+                    "control: control\n    split: {control: 50",
+                    "control: \"007\"\n    split: {\"007\": 50",
+                ),
+                Edit::Run(|d| edit_data(d, "data/assignments.csv", ",control,", ",007,")),
+            ],
+            "analyze one_page_checkout",
+            0,
+            "Arms: 007 ",
+        ),
+        case(
+            "arm labels stored as numbers",
+            vec![
+                replace(
+                    "control: control\n    split: {control: 50, treatment: 50}",
+                    "control: \"1.0\"\n    split: {\"1.0\": 50, \"2.0\": 50}",
+                ),
+                Edit::Run(|d| {
+                    edit_data(d, "data/assignments.csv", ",control,", ",1.0,");
+                    edit_data(d, "data/assignments.csv", ",treatment,", ",2.0,")
+                }),
+            ],
+            "analyze one_page_checkout",
+            0,
+            "Arms: 1.0 ",
+        ),
+        case(
+            "unquoted number label in split",
+            vec![replace(
+                "split: {control: 50, treatment: 50}",
+                "split: {control: 50, 1.10: 50}",
+            )],
+            "check",
+            1,
+            "`1.10` is an arm's label, but YAML reads it as the number 1.1",
+        ),
+        case(
+            "unquoted number key",
+            vec![replace("key: one-page-checkout", "key: 1.10")],
+            "check",
+            1,
+            "YAML reads it as the number 1.1",
+        ),
         // Reading what it should not.
         case(
             "data-modifying CTE in sql:",
@@ -250,6 +404,42 @@ fn cases() -> Vec<Case> {
             "only a query that reads data",
         ),
     ]
+}
+
+const STATS: &str = "analyze one_page_checkout --stats stats.csv";
+
+/// Writes `stats.csv`: the statistics table of `experiment` computed on the local data
+/// (as a warehouse would return it), after `change`.
+fn stats(dir: &Path, experiment: &str, change: fn(&mut Vec<plumb::execute::NamedRow>)) {
+    let mut sources = plumb::source::SourceMap::new();
+    let plumb::workspace::Opened::Ok(ws, _) = plumb::workspace::open(dir, &mut sources).unwrap() else {
+        panic!("the demo catalog does not open");
+    };
+    let mut engine = plumb::execute::duckdb::LocalEngine::open(None, &ws.local_tables).unwrap();
+    let id = ws.catalog.experiment(experiment).unwrap();
+    let dialect = plumb::render::Dialect::load("duckdb", None).unwrap();
+    let (plan, sql) = plumb::compile_experiment(&ws.catalog, id, &[], &dialect).unwrap();
+    let mut rows = plumb::execute::Engine::readout(&mut engine, &plan, &sql).unwrap();
+    change(&mut rows);
+    let cols: Vec<String> = rows[0].keys().cloned().collect();
+    let mut out = cols.join(",") + "\n";
+    for r in &rows {
+        let cells: Vec<String> = cols
+            .iter()
+            .map(|c| match &r[c] {
+                plumb::execute::Cell::Null => String::new(),
+                plumb::execute::Cell::Number(x) => format!("{x:?}"),
+                plumb::execute::Cell::Text(t) => t.clone(),
+            })
+            .collect();
+        out += &(cells.join(",") + "\n");
+    }
+    std::fs::write(dir.join("stats.csv"), out).unwrap();
+}
+
+fn set(row: &mut plumb::execute::NamedRow, column: &str, value: &str) {
+    assert!(row.contains_key(column), "no column {column}: {:?}", row.keys());
+    row.insert(column.into(), plumb::execute::Cell::Text(value.into()));
 }
 
 /// Replaces every occurrence of `old` in a data file.

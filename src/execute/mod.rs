@@ -76,10 +76,21 @@ fn count(row: &NamedRow, col: &str) -> Result<u64> {
     Ok(x as u64)
 }
 
+/// The largest count a statistics table may hold: beyond 2^53 an f64 no longer counts
+/// exactly (`units = 1e30` once saturated through `as u64`).
+const MAX_COUNT: f64 = 9_007_199_254_740_992.0;
+
 /// Reads the readout query's rows into a [`StatsTable`]. Column names are matched without
 /// regard to case (engines that fold unquoted names return them in upper case).
+///
+/// Every cell is checked, whichever engine or file it comes from, and a bad one is refused with
+/// its row and column named: counts are whole numbers up to 2^53, a metric's `__n` is at most
+/// the arm's units, means are finite (0/1 metrics between 0 and 1, counts not negative),
+/// variances finite and not negative, covariances within Cauchy–Schwarz, one row per arm and
+/// segment value, and segment rows only for the plan's segments.
 pub fn stats_table(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<StatsTable> {
     let mut table = StatsTable::default();
+    let mut seen = std::collections::BTreeSet::new();
     for (i, row) in rows.iter().enumerate() {
         let row: NamedRow = row
             .iter()
@@ -97,31 +108,139 @@ pub fn stats_table(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<StatsTabl
         let Some(arm) = text(columns::ARM)? else {
             return Err(Error::data(format!("row {} of the result has no arm", i + 1)));
         };
+        let at = |col: &str, problem: String| {
+            Error::data(format!(
+                "row {} of the statistics (arm `{arm}`), column `{col}`: {problem}",
+                i + 1
+            ))
+        };
+        let count = |col: &str| -> Result<u64> {
+            let x = count(row, col)?;
+            if x as f64 > MAX_COUNT {
+                return Err(at(col, format!("{x} is more than any table holds")));
+            }
+            Ok(x)
+        };
         if i == 0 {
-            table.excluded_multiple_arms = count(row, columns::EXCLUDED_MULTIPLE_ARMS)?;
-            table.excluded_missing_arm = count(row, columns::EXCLUDED_MISSING_ARM)?;
-            table.excluded_rows_without_unit = count(row, columns::EXCLUDED_ROWS_WITHOUT_UNIT)?;
+            table.excluded_multiple_arms = count(columns::EXCLUDED_MULTIPLE_ARMS)?;
+            table.excluded_missing_arm = count(columns::EXCLUDED_MISSING_ARM)?;
+            table.excluded_rows_without_unit = count(columns::EXCLUDED_ROWS_WITHOUT_UNIT)?;
         }
         let segment = if plan.segments.is_empty() {
+            // A segment row where the plan has no segments would be read as the overall row.
+            if let Some(name) = row.get(columns::SEGMENT_NAME).filter(|c| **c != Cell::Null) {
+                return Err(at(
+                    columns::SEGMENT_NAME,
+                    format!("{name:?} is a segment row, but this experiment is read without segments"),
+                ));
+            }
             None
         } else {
-            text(columns::SEGMENT_NAME)?
+            let segment = text(columns::SEGMENT_NAME)?
                 .map(|name| -> Result<_> { Ok((name, text(columns::SEGMENT_VALUE)?)) })
+                .transpose()?;
+            if let Some((name, _)) = &segment
+                && !plan.segments.iter().any(|s| &s.name == name)
+            {
+                return Err(at(
+                    columns::SEGMENT_NAME,
+                    format!("`{name}` is not a segment of this readout"),
+                ));
+            }
+            segment
         };
+        if !seen.insert((arm.clone(), segment.clone())) {
+            let what = match &segment {
+                None => "the overall row".to_string(),
+                Some((name, value)) => format!("segment `{name}` = {value:?}"),
+            };
+            return Err(at(columns::ARM, format!("a second row for this arm and {what}")));
+        }
         let mut out = ArmRow {
-            arm,
-            segment: segment.transpose()?,
-            units: count(row, columns::UNITS)?,
+            arm: arm.clone(),
+            segment,
+            units: count(columns::UNITS)?,
             ..ArmRow::default()
         };
         for c in &plan.columns {
-            let n = count(row, &columns::stat(&c.column, Stat::N))?;
-            let mean = number(row, &columns::stat(&c.column, Stat::Mean))?.unwrap_or(f64::NAN);
-            let var = number(row, &columns::stat(&c.column, Stat::Var))?.unwrap_or(f64::NAN);
+            let (n_col, mean_col, var_col) = (
+                columns::stat(&c.column, Stat::N),
+                columns::stat(&c.column, Stat::Mean),
+                columns::stat(&c.column, Stat::Var),
+            );
+            let n = count(&n_col)?;
+            if n > out.units {
+                return Err(at(
+                    &n_col,
+                    format!("{n} units with a value, more than the arm's {} units", out.units),
+                ));
+            }
+            let mean = number(row, &mean_col)?.unwrap_or(f64::NAN);
+            let mut var = number(row, &var_col)?.unwrap_or(f64::NAN);
+            if n > 0 && !mean.is_finite() {
+                return Err(at(&mean_col, format!("{mean} is not a finite mean")));
+            }
+            let aggregation = plan.scans.get(c.scan).and_then(|s| {
+                s.aggregates
+                    .iter()
+                    .find(|a| a.column == c.column)
+                    .map(|a| a.aggregation)
+            });
+            if n > 0 {
+                use crate::ir::Aggregation as A;
+                let tolerance = 1e-9;
+                match aggregation {
+                    Some(A::Any | A::AtLeast(_)) if !(-tolerance..=1.0 + tolerance).contains(&mean) => {
+                        return Err(at(
+                            &mean_col,
+                            format!("{mean} is the mean of a 0/1 metric, so it must lie between 0 and 1"),
+                        ));
+                    }
+                    Some(A::Count | A::Distinct) if mean < -tolerance => {
+                        return Err(at(
+                            &mean_col,
+                            format!("{mean} is the mean of a count, so it cannot be negative"),
+                        ));
+                    }
+                    _ => {}
+                }
+            }
+            if n > 1 {
+                if var.is_nan() || var.is_infinite() {
+                    return Err(at(&var_col, format!("{var} is not a finite variance")));
+                }
+                // Rounding in an engine's one-pass formula can leave a zero variance a hair
+                // below 0; anything more is not a variance.
+                let scale = 1e-9 * mean.abs().max(1.0).powi(2);
+                if var < -scale {
+                    return Err(at(&var_col, format!("{var} is a negative variance")));
+                }
+                var = var.max(0.0);
+            }
             out.columns.insert(c.column.clone(), Moments { n, mean, var });
         }
         for c in &plan.covariances {
             let cov = number(row, &c.name)?.unwrap_or(f64::NAN);
+            // Cauchy–Schwarz holds when the covariance and both variances are over the same
+            // units: when neither column has missing values (min/max ones can).
+            if let (Some(a), Some(b)) = (out.columns.get(&c.a), out.columns.get(&c.b))
+                && a.n > 1
+                && a.n == out.units
+                && b.n == out.units
+            {
+                if cov.is_infinite() {
+                    return Err(at(&c.name, format!("{cov} is not a finite covariance")));
+                }
+                let bound = (a.var * b.var).sqrt();
+                if cov.abs() > bound * (1.0 + 1e-6) + 1e-12 {
+                    return Err(at(
+                        &c.name,
+                        format!(
+                            "{cov} is larger than the two variances allow (at most {bound} in size, by Cauchy–Schwarz)"
+                        ),
+                    ));
+                }
+            }
             out.covariances.insert(c.name.clone(), cov);
         }
         table.rows.push(out);
@@ -139,10 +258,12 @@ pub fn read_stats_file(path: &std::path::Path) -> Result<Vec<NamedRow>> {
         .to_ascii_lowercase();
     let text = std::fs::read_to_string(path)
         .map_err(|e| Error::data(format!("cannot read {}: {e}", path.display())).with_source(e))?;
+    // Spreadsheet programs start UTF-8 files with a byte-order mark.
+    let text = text.strip_prefix('\u{feff}').unwrap_or(&text);
     match ext.as_str() {
-        "csv" => parse_csv(&text).map_err(|e| Error::data(format!("{}: {e}", path.display()))),
+        "csv" => parse_csv(text).map_err(|e| Error::data(format!("{}: {e}", path.display()))),
         "json" | "jsonl" | "ndjson" => {
-            parse_json(&text).map_err(|e| Error::data(format!("{}: {e}", path.display())))
+            parse_json(text).map_err(|e| Error::data(format!("{}: {e}", path.display())))
         }
         "parquet" => Err(Error::data(format!(
             "{}: Parquet statistics files are not supported by this build; export the result as CSV or JSON",
@@ -155,14 +276,12 @@ pub fn read_stats_file(path: &std::path::Path) -> Result<Vec<NamedRow>> {
     }
 }
 
+/// A cell of a statistics file as written: labels stay text (`007` and `1.0` are arms, not
+/// the numbers 7 and 1); numbers are parsed exactly where a number is read.
 fn cell_from_text(t: &str) -> Cell {
     let t = t.trim();
     if t.is_empty() || t.eq_ignore_ascii_case("null") || t == "\\N" {
         Cell::Null
-    } else if let Ok(x) = t.parse::<f64>() {
-        Cell::Number(x)
-    } else if t.eq_ignore_ascii_case("nan") {
-        Cell::Number(f64::NAN)
     } else {
         Cell::Text(t.to_string())
     }
@@ -259,7 +378,9 @@ fn parse_json(text: &str) -> Result<Vec<NamedRow>, String> {
                 .map(|(k, v)| {
                     let cell = match v {
                         serde_json::Value::Null => Cell::Null,
-                        serde_json::Value::Number(n) => Cell::Number(n.as_f64().unwrap_or(f64::NAN)),
+                        // As written (`1.0` stays `1.0` where it is a label); read exactly as
+                        // a number where one is expected (serde_json's float_roundtrip).
+                        serde_json::Value::Number(n) => Cell::Text(n.to_string()),
                         serde_json::Value::String(s) => cell_from_text(&s),
                         serde_json::Value::Bool(b) => Cell::Number(f64::from(u8::from(b))),
                         other => Cell::Text(other.to_string()),
@@ -284,7 +405,7 @@ pub fn check_fingerprint(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<()>
             .collect();
         match row.get(columns::LAYOUT) {
             Some(Cell::Number(x)) if *x == f64::from(crate::plan::STATS_LAYOUT) => {}
-            Some(Cell::Text(t)) if t.trim() == crate::plan::STATS_LAYOUT.to_string() => {}
+            Some(Cell::Text(t)) if t.trim().parse::<f64>() == Ok(f64::from(crate::plan::STATS_LAYOUT)) => {}
             None => {
                 return Err(Error::data(
                     "the statistics table has no plumb_layout column: it was not produced by `plumb sql`",
@@ -310,4 +431,40 @@ pub fn check_fingerprint(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<()>
         }
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The same digits in a JSON and a CSV statistics file are the same number (serde_json's
+    /// default float parser once differed in the last bit, moving p-values in the 10th digit),
+    /// and labels stay as written.
+    #[test]
+    fn json_and_csv_cells_read_the_same_digits_exactly() {
+        let digits = [
+            "0.1234567890123456789",
+            "2.2250738585072011e-308",
+            "1.7976931348623157e308",
+            "0.30000000000000004",
+            "123456.78901234567",
+            "8.589973e9",
+        ];
+        for d in digits {
+            let csv = parse_csv(&format!("x,arm\n{d},007\n")).unwrap();
+            let json = parse_json(&format!("[{{\"x\": {d}, \"arm\": \"007\"}}]")).unwrap();
+            let a = number(&csv[0], "x").unwrap().unwrap();
+            let b = number(&json[0], "x").unwrap().unwrap();
+            assert_eq!(a.to_bits(), b.to_bits(), "{d}");
+            assert_eq!(a.to_bits(), d.parse::<f64>().unwrap().to_bits(), "{d}");
+            assert_eq!(csv[0]["arm"], Cell::Text("007".into()));
+            assert_eq!(json[0]["arm"], Cell::Text("007".into()));
+        }
+        let json = parse_json("{\"arm\": 1.0}").unwrap();
+        assert_eq!(
+            json[0]["arm"],
+            Cell::Text("1.0".into()),
+            "a JSON number label keeps its text"
+        );
+    }
 }

@@ -137,6 +137,20 @@ impl Resolver<'_> {
         }
     }
 
+    /// Reports a label (`key`) that YAML turned into a number whose text differs from what
+    /// was written (`1.10` -> `1.1`, `007` -> `7`).
+    fn label_as_written<T>(&mut self, item: &Item<T>, key: &str, read: Option<&str>) {
+        let (Some(read), Some(node)) = (read, item.node.get(key)) else {
+            return;
+        };
+        if let crate::load::yaml::NodeKind::Scalar(written) = &node.kind
+            && written != read
+        {
+            let span = Span::new(item.file, node.range.clone());
+            self.push(number_label(written, read, span, "an experiment key"));
+        }
+    }
+
     /// Span of `word` inside the value of `key`, or the whole value.
     fn word_span<T>(&self, item: &Item<T>, key: &str, word: &str) -> Option<Span> {
         let whole = item.value_span(key)?;
@@ -833,6 +847,24 @@ impl Resolver<'_> {
             .required(item, &v.control, "control", "an experiment", "control")
             .map(str::to_string);
 
+        // Labels are text as written: YAML reads `key: 1.10` or an arm `007` as a number, which
+        // would reach the SQL as '1.1' and '7' and match nothing.
+        self.label_as_written(item, "key", v.key.as_ref().map(|k| k.0.as_str()));
+        if let (Some(split), Some(node)) = (&v.split, item.node.get("split"))
+            && let crate::load::yaml::NodeKind::Map(entries) = &node.kind
+        {
+            for ((written, range, _), (read, _)) in entries.iter().zip(&split.0) {
+                if written != read {
+                    self.push(number_label(
+                        written,
+                        read,
+                        Span::new(item.file, range.clone()),
+                        "an arm",
+                    ));
+                }
+            }
+        }
+
         // Split: positive shares, control among them, at least two arms.
         let mut arms = Vec::new();
         match &v.split {
@@ -1024,6 +1056,16 @@ impl Resolver<'_> {
             mde,
         })
     }
+}
+
+/// A label YAML read as a number: refused, with the quoted spelling to write instead.
+fn number_label(written: &str, read: &str, span: Span, what: &str) -> Diagnostic {
+    Diagnostic::error(
+        "E004",
+        format!("`{written}` is {what}'s label, but YAML reads it as the number {read}"),
+    )
+    .at(Some(span))
+    .hint(format!("quote it to keep the text as written: \"{written}\""))
 }
 
 fn suggest_snake(name: &str) -> String {
