@@ -115,15 +115,30 @@ impl Context {
         };
         match crate::timing::stage("resolve", || loaded.resolve(&sources, &schemas)) {
             Opened::Invalid(diags) => Err(Error::catalog(sources, diags)),
-            Opened::Ok(ws, warnings) => Ok(Context {
-                workspace: *ws,
-                sources,
-                warnings,
-                dialects_dir: options.dialects_dir,
-                dialects: RefCell::new(BTreeMap::new()),
-                choice: options.engine,
-                engine: RefCell::new(engine),
-            }),
+            Opened::Ok(ws, warnings) => {
+                // The local data's types, bound item by item (see `probe`).
+                if let Some(binder) = engine.as_deref().and_then(|e| e.binder()) {
+                    let dialect = Dialect::load("duckdb", options.dialects_dir.as_deref())?;
+                    let tables: Vec<String> = schemas.keys().cloned().collect();
+                    let found = crate::timing::stage("probe local data", || {
+                        crate::probe::probe(&ws, &dialect, binder, tables)
+                    });
+                    if !found.is_empty() {
+                        let mut diags = warnings;
+                        diags.extend(found);
+                        return Err(Error::catalog(sources, diags));
+                    }
+                }
+                Ok(Context {
+                    workspace: *ws,
+                    sources,
+                    warnings,
+                    dialects_dir: options.dialects_dir,
+                    dialects: RefCell::new(BTreeMap::new()),
+                    choice: options.engine,
+                    engine: RefCell::new(engine),
+                })
+            }
         }
     }
 

@@ -30,6 +30,7 @@ pub mod lint;
 pub mod load;
 pub mod output;
 pub mod plan;
+pub mod probe;
 pub mod render;
 pub mod report;
 pub mod resolve;

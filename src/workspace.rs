@@ -147,16 +147,26 @@ pub fn load(dir: &Path, sources: &mut SourceMap) -> Result<Loaded> {
     })
 }
 
-/// A warning: the local data could not be read, so columns are checked against `columns:` only.
+/// An error: a declared local file exists but cannot be read (empty, corrupt, not the format
+/// its extension says). Pointed at the file's entry under `local: tables:` when the message
+/// names it, else at `local:`.
 pub fn unreadable_local_data(raw_ws: &RawWorkspace, error: &Error) -> Diagnostic {
+    let message = error.to_string();
+    let table = message
+        .split_once("local table `")
+        .and_then(|(_, rest)| rest.split_once('`'))
+        .map(|(name, _)| name.to_string());
+    let span = table
+        .and_then(|t| raw_ws.value_span(&[Seg::Key("local".into()), Seg::Key("tables".into()), Seg::Key(t)]))
+        .or_else(|| raw_ws.value_span(&[Seg::Key("local".into())]));
     Diagnostic {
-        severity: crate::diagnostics::Severity::Warning,
-        code: "W001",
-        message: format!("cannot read the local data to check columns: {error}"),
-        span: raw_ws.value_span(&[Seg::Key("local".into())]),
+        severity: crate::diagnostics::Severity::Error,
+        code: "E022",
+        message: format!("cannot read the local data: {message}"),
+        span,
         labels: Vec::new(),
         hints: vec![
-            "SQL fragments were checked against declared `columns:` only; fix the file or its path under `local:`".into(),
+            "fix the file, or its path under `local:` in plumb.yaml (a file that is not there yet is skipped; one that is there must be readable)".into(),
         ],
     }
 }

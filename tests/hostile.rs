@@ -392,6 +392,104 @@ fn cases() -> Vec<Case> {
             1,
             "YAML reads it as the number 1.1",
         ),
+        // Found by `check` against the local data (bound, not run), located at the item.
+        case(
+            "qualified column typo",
+            vec![replace(
+                "of: \"amount_cents / 100.0\"",
+                "of: \"e.amout_cents / 100.0\"",
+            )],
+            "check",
+            1,
+            "plant_shop.yaml:62:9",
+        ),
+        case(
+            "aggregate inside of",
+            vec![replace(
+                "of: \"amount_cents / 100.0\"",
+                "of: \"sum(amount_cents)\"",
+            )],
+            "check",
+            1,
+            "`of` of metric `revenue` holds an aggregate",
+        ),
+        case(
+            "unknown exposure-log column",
+            vec![replace("    arm: arm\n", "    arm: arms\n")],
+            "check",
+            1,
+            "unknown column `arms` in `arm` (exposure log `assignments`)",
+        ),
+        case(
+            "unknown local table",
+            vec![replace("    table: orders\n", "    table: ordres\n")],
+            "check",
+            1,
+            "did you mean `orders`?",
+        ),
+        case(
+            "empty CSV file",
+            vec![write("data/visits.csv", "")],
+            "check",
+            1,
+            "data/visits.csv is empty",
+        ),
+        case(
+            "header-only CSV file",
+            vec![write("data/visits.csv", "shopper_id,visited_at,page\n")],
+            "check",
+            1,
+            "the table has no rows",
+        ),
+        case(
+            "text in a numeric column",
+            vec![Edit::Run(text_amount)],
+            "check",
+            1,
+            "'/(VARCHAR, DECIMAL(4,1))'",
+        ),
+        case(
+            "text in a numeric column past the rows types are read from",
+            vec![Edit::Run(text_past_the_sample)],
+            "analyze one_page_checkout",
+            2,
+            "Could not convert string \"12abc\" to 'BIGINT'",
+        ),
+        case(
+            "epoch-integer timestamps",
+            vec![Edit::Run(epoch_visits)],
+            "check",
+            1,
+            "`time` column `visited_at` of event table `visits` is BIGINT, not a timestamp",
+        ),
+        case(
+            "unit ids of different types",
+            vec![Edit::Run(integer_visit_ids)],
+            "check",
+            1,
+            "ids of unit `shopper` are integers (BIGINT) in event table `visits` but text (VARCHAR) in event table `orders`",
+        ),
+        case(
+            "where that is not true/false",
+            vec![replace("where: \"status = 'paid'\"", "where: \"status\"")],
+            "check",
+            1,
+            "`where` of metric `orders` is VARCHAR, not true/false",
+        ),
+        case(
+            "unreadable Parquet file",
+            vec![
+                write("data/junk.parquet", "not parquet"),
+                Edit::Replace(
+                    "plumb.yaml",
+                    "    orders: data/orders.csv\n",
+                    "    orders: data/junk.parquet\n".into(),
+                ),
+            ],
+            "check",
+            1,
+            "plumb.yaml:6:13",
+        ),
         // Reading what it should not.
         case(
             "data-modifying CTE in sql:",
@@ -404,6 +502,61 @@ fn cases() -> Vec<Case> {
             "only a query that reads data",
         ),
     ]
+}
+
+/// 21,000 more orders, the last with `12abc` as its amount: past the 20,480 rows the CSV
+/// reader reads types from, so only reading the rows finds it.
+fn text_past_the_sample(dir: &Path) {
+    let path = dir.join("data/orders.csv");
+    let mut text = std::fs::read_to_string(&path).unwrap();
+    for i in 0..21_000 {
+        text += &format!("x{i},s000001,2026-03-20 10:00:00,refunded,100,false\n");
+    }
+    text += "x-last,s000001,2026-03-20 10:00:00,paid,12abc,false\n";
+    std::fs::write(path, text).unwrap();
+}
+
+/// The third order's amount as `12x`.
+fn text_amount(dir: &Path) {
+    let path = dir.join("data/orders.csv");
+    let text = std::fs::read_to_string(&path).unwrap();
+    let mut lines: Vec<String> = text.lines().map(String::from).collect();
+    let mut cells: Vec<String> = lines[3].split(',').map(String::from).collect();
+    cells[4] = "12x".into();
+    lines[3] = cells.join(",");
+    std::fs::write(path, lines.join("\n") + "\n").unwrap();
+}
+
+/// `visited_at` as epoch seconds.
+fn epoch_visits(dir: &Path) {
+    rewrite_csv(dir, "data/visits.csv", |cells| {
+        let t = plumb::time::Timestamp::parse(&cells[1]).unwrap();
+        cells[1] = t.0.to_string();
+    });
+}
+
+/// Visit shopper ids as integers (`s000123` -> `123`), order ids stay text.
+fn integer_visit_ids(dir: &Path) {
+    rewrite_csv(dir, "data/visits.csv", |cells| {
+        cells[0] = cells[0]
+            .trim_start_matches('s')
+            .trim_start_matches('0')
+            .to_string();
+    });
+}
+
+/// Rewrites each data line of a CSV file without quoted fields.
+fn rewrite_csv(dir: &Path, file: &str, change: fn(&mut Vec<String>)) {
+    let path = dir.join(file);
+    let text = std::fs::read_to_string(&path).unwrap();
+    let mut lines = text.lines();
+    let mut out = format!("{}\n", lines.next().unwrap());
+    for line in lines {
+        let mut cells: Vec<String> = line.split(',').map(String::from).collect();
+        change(&mut cells);
+        out += &(cells.join(",") + "\n");
+    }
+    std::fs::write(path, out).unwrap();
 }
 
 const STATS: &str = "analyze one_page_checkout --stats stats.csv";

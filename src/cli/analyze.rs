@@ -86,7 +86,7 @@ fn postgres_engine(url: &str) -> Result<EngineChoice> {
 
 #[cfg(not(feature = "postgres"))]
 fn postgres_engine(_: &str) -> Result<EngineChoice> {
-    Err(Error::usage(
+    Err(crate::error::Error::usage(
         "this plumb was built without the `postgres` feature",
     ))
 }

@@ -53,6 +53,12 @@ pub trait Engine {
         let _ = plan;
         self.query(sql)
     }
+
+    /// Binds statements without running them, for the check-time probes of the local data
+    /// ([`crate::probe`]); `None` where the engine cannot.
+    fn binder(&self) -> Option<&dyn crate::probe::Binder> {
+        None
+    }
 }
 
 fn number(row: &NamedRow, col: &str) -> Result<Option<f64>> {

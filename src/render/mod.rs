@@ -399,7 +399,8 @@ impl Dialect {
         expr.to_string()
     }
 
-    fn source(&self, source: &Source) -> String {
+    /// A table name or `(query)`, re-emitted for this dialect.
+    pub fn source(&self, source: &Source) -> String {
         match source {
             Source::Table(parts) => parts.iter().map(|p| self.ident(p)).collect::<Vec<_>>().join("."),
             Source::Query(q) => {
