@@ -127,6 +127,18 @@ fn cases() -> Vec<Case> {
             "is not a timestamp",
         ),
         case(
+            // sqlparser counts columns in characters, spans are bytes: the caret must land on
+            // the `)` (character 45 of the line), not 24 bytes early or inside a character.
+            "multi-byte fragment located in JSON",
+            vec![replace(
+                refunds,
+                "where: \"'日本語日本語' = status AND (status = ) \"",
+            )],
+            "check --format json",
+            1,
+            "\"column\": 45",
+        ),
+        case(
             "non-ASCII window",
             vec![replace("window: [0d, 7d]", "window: [0d, 7д]")],
             "check",
@@ -667,7 +679,9 @@ fn run(case: &Case) -> Result<(), String> {
     let stdout = String::from_utf8_lossy(&out.stdout);
     let stderr = String::from_utf8_lossy(&out.stderr);
     let code = out.status.code();
-    let shown = if case.exit == 0 { &stdout } else { &stderr };
+    // Errors are read from stderr, except a JSON document, which is the answer on stdout.
+    let json = case.args.windows(2).any(|w| w[0] == "--format" && w[1] == "json");
+    let shown = if case.exit == 0 || json { &stdout } else { &stderr };
     if code != Some(case.exit) || !shown.contains(case.says) {
         let cut = |s: &str| s.chars().take(1500).collect::<String>();
         return Err(format!(

@@ -304,19 +304,30 @@ impl Resolver<'_> {
         }
     }
 
-    /// Maps a line/column inside a fragment to a span in the YAML file (best effort for quoted
-    /// and multi-line scalars: falls back to the whole value).
+    /// Maps a line/column inside a fragment to a span in the YAML file. sqlparser counts columns
+    /// in characters while spans are byte ranges, so the column is walked character by
+    /// character. Where the file's text is not the fragment's text one to one (multi-line
+    /// scalars, escapes in quoted scalars) it falls back to the whole value.
     fn fragment_span<T>(&self, item: &Item<T>, key: &str, line: usize, column: usize) -> Option<Span> {
         let whole = item.value_span(key)?;
         let file = self.sources.get(whole.file);
-        let raw = &file.text[whole.range.clone()];
-        if line != 1 || raw.contains('\n') {
+        let raw = file.text.get(whole.range.clone())?;
+        let quote = raw.chars().next().filter(|c| matches!(c, '\'' | '"'));
+        let escaped = match quote {
+            Some('"') => raw.contains('\\'),
+            Some(_) => raw[1..].trim_end_matches('\'').contains("''"),
+            None => false,
+        };
+        if line != 1 || raw.contains('\n') || escaped {
             return Some(whole);
         }
-        let quote = usize::from(raw.starts_with(['\'', '"']));
-        let start = (whole.range.start + quote + column.saturating_sub(1)).min(whole.range.end);
-        let end = (start + 1).min(whole.range.end).max(start);
-        Some(Span::new(whole.file, start..end))
+        let body = &raw[quote.map_or(0, char::len_utf8)..];
+        let mut chars = body.char_indices().skip(column.saturating_sub(1));
+        let Some((offset, c)) = chars.next() else {
+            return Some(whole);
+        };
+        let start = whole.range.start + quote.map_or(0, char::len_utf8) + offset;
+        Some(Span::new(whole.file, start..start + c.len_utf8()))
     }
 
     fn source<T>(
