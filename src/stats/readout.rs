@@ -494,20 +494,26 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
     let shares: Vec<f64> = spec.arms.iter().map(|(_, s)| *s).collect();
     let srm = super::sample_ratio(&observed, &shares);
 
-    let mut groups: Vec<Option<(String, Option<String>)>> = vec![None];
+    // Rows grouped by segment value in order of first appearance (the whole population first),
+    // in one pass: a segment may have tens of thousands of values, so no per-group rescans.
+    type Key<'a> = Option<&'a (String, Option<String>)>;
+    let mut groups: Vec<(Key, Vec<&ArmRow>)> = vec![(None, Vec::new())];
+    let mut index: std::collections::HashMap<Key, usize> = std::collections::HashMap::from([(None, 0)]);
     for r in &table.rows {
-        if r.segment.is_some() && !groups.contains(&r.segment) {
-            groups.push(r.segment.clone());
-        }
+        let key = r.segment.as_ref();
+        let i = *index.entry(key).or_insert_with(|| {
+            groups.push((key, Vec::new()));
+            groups.len() - 1
+        });
+        groups[i].1.push(r);
     }
     let mut results = Vec::new();
-    for group in &groups {
-        let rows: Vec<&ArmRow> = table.rows.iter().filter(|r| &r.segment == group).collect();
-        let segment = group.as_ref().map(|(name, value)| SegmentRef {
+    for (group, rows) in &groups {
+        let segment = group.map(|(name, value)| SegmentRef {
             name: name.clone(),
             value: value.clone(),
         });
-        results.extend(metric_rows(spec, &rows, segment));
+        results.extend(metric_rows(spec, rows, segment));
     }
     adjust_and_judge(spec, &mut results);
     let guardrails_failed: Vec<GuardrailFailure> = results
