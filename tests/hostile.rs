@@ -59,6 +59,14 @@ fn cases() -> Vec<Case> {
         .join(" OR ");
     let parens = |n: usize| format!("where: \"{}status = 'refunded'{}\"", "(".repeat(n), ")".repeat(n));
     let refunds = "where: \"status = 'refunded'\"";
+    let many_metrics: String = (0..2_000)
+        .map(|i| {
+            format!(
+                "  - name: o{i}\n    description: paid orders above {i} cents\n    owner: x\n    events: orders\n    per_unit: count\n    where: \"status = 'paid' and amount_cents > {i}\"\n"
+            )
+        })
+        .collect();
+    let many_names = (0..2_000).map(|i| format!("o{i}")).collect::<Vec<_>>().join(", ");
     vec![
         // Crashes, hangs and resource blow-ups.
         case(
@@ -125,6 +133,21 @@ fn cases() -> Vec<Case> {
             "report orders --from 2026-03-1é --to 2026-04-01",
             2,
             "is not a timestamp",
+        ),
+        case(
+            // Once failed with DuckDB "Out of Memory" (at 60k units the process was killed at
+            // 24 GB): the readout is one statement, so the limit is said before it runs.
+            "2,000 metrics in one experiment",
+            vec![
+                replace("metrics:\n", format!("metrics:\n{many_metrics}")),
+                replace(
+                    "    secondary: [revenue, page_views]\n",
+                    format!("    secondary: [revenue, page_views, {many_names}]\n"),
+                ),
+            ],
+            "analyze care_guide_banner",
+            2,
+            "has 2005 metrics; plumb computes at most 250 metrics",
         ),
         case(
             // sqlparser counts columns in characters, spans are bytes: the caret must land on
