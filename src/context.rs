@@ -23,11 +23,6 @@ use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 use std::rc::Rc;
 
-/// The most metrics one readout computes on an engine (`analyze`, `diff --data`). The readout is
-/// one statement and its per-unit table is units x metrics wide: on the local engine 500 metrics
-/// on 36,000 units took 6.7 GB and 2,000 were killed for memory, while 250 took 2.1 GB.
-pub const MAX_READOUT_METRICS: usize = 250;
-
 /// Where a context's queries run.
 pub enum EngineChoice {
     /// The embedded DuckDB over the workspace's `local:` data.
@@ -315,11 +310,12 @@ impl Context {
     ) -> Result<Readout> {
         let dialect = self.engine_dialect()?;
         let (plan, sql) = compile::compile_experiment(catalog, experiment, by, &dialect)?;
-        if plan.metrics.len() > MAX_READOUT_METRICS {
+        if plan.metrics.len() > options.max_metrics {
             return Err(Error::usage(format!(
-                "experiment `{}` has {} metrics; plumb computes at most {MAX_READOUT_METRICS} metrics of one readout on an engine, because the readout is one statement whose per-unit table grows with units x metrics (measured locally: 500 metrics on 36,000 units took 6.7 GB, 2,000 ran out of memory). Split the metric lists into several experiments' readouts, or run the statement from `plumb sql` in the warehouse and read it back with `analyze --stats FILE`",
+                "experiment `{}` has {} metrics; plumb computes at most {} metrics of one readout on an engine, because the readout is one statement whose per-unit table grows with units x metrics (measured locally: 500 metrics on 36,000 units took 6.7 GB, 2,000 ran out of memory). Split the metric lists into several experiments' readouts, raise the limit with --max-metrics if the engine has the memory, or run the statement from `plumb sql` in the warehouse and read it back with `analyze --stats FILE`",
                 plan.experiment,
-                plan.metrics.len()
+                plan.metrics.len(),
+                options.max_metrics
             )));
         }
         let rows = crate::timing::stage("readout query", || self.query_readout(&plan, &sql))?;

@@ -150,6 +150,13 @@ fn cases() -> Vec<Case> {
             "has 2005 metrics; plumb computes at most 250 metrics",
         ),
         case(
+            "a metric limit below the experiment's metrics",
+            vec![],
+            "analyze one_page_checkout --max-metrics 3",
+            2,
+            "plumb computes at most 3 metrics of one readout",
+        ),
+        case(
             // sqlparser counts columns in characters, spans are bytes: the caret must land on
             // the `)` (character 45 of the line), not 24 bytes early or inside a character.
             "multi-byte fragment located in JSON",

@@ -37,6 +37,10 @@ pub struct AnalyzeArgs {
     /// The most values one segment may have (more is usually an id, not a grouping).
     #[arg(long, value_name = "N", default_value_t = crate::compile::MAX_SEGMENT_VALUES)]
     max_segment_values: usize,
+    /// The most metrics one readout computes on an engine (the per-unit table grows with
+    /// units x metrics; raise it only where the engine has the memory).
+    #[arg(long, value_name = "N", default_value_t = crate::compile::MAX_READOUT_METRICS)]
+    max_metrics: usize,
 }
 
 /// Where the statistics table comes from.
@@ -72,6 +76,7 @@ impl Settings {
                 // Whole-population impact needs the population's data: local runs only, so far.
                 population_impact: local,
                 max_segment_values: a.max_segment_values,
+                max_metrics: a.max_metrics,
             },
             format: a.format,
             source,
