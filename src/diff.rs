@@ -327,14 +327,15 @@ fn numbers_line(n: &Option<RowNumbers>) -> String {
 
 /// The diff as text for a terminal (`color`: ANSI colours on +/- lines).
 pub fn text_output(d: &Diff, color: bool) -> String {
+    use crate::output::mark;
     let paint = |line: &str| -> String {
         if !color {
             return line.to_string();
         }
         match line.chars().next() {
-            Some('+') if !line.starts_with("+++") => format!("\x1b[32m{line}\x1b[0m"),
-            Some('-') if !line.starts_with("---") => format!("\x1b[31m{line}\x1b[0m"),
-            Some('@') => format!("\x1b[36m{line}\x1b[0m"),
+            Some('+') if !line.starts_with("+++") => format!("{}{line}{}", mark::GREEN, mark::RESET),
+            Some('-') if !line.starts_with("---") => format!("{}{line}{}", mark::RED, mark::RESET),
+            Some('@') => format!("{}{line}{}", mark::CYAN, mark::RESET),
             _ => line.to_string(),
         }
     };

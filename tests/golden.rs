@@ -242,8 +242,21 @@ fn every_command_on_the_demo() {
         ),
     ];
     for (name, args) in cases {
-        insta::assert_snapshot!(*name, run(&ws, args));
+        let out = run(&ws, args);
+        if name.starts_with("analyze") && !name.ends_with("json") {
+            // The readout fits a 100-column terminal: no line wraps.
+            for line in out.lines() {
+                let w = line.chars().count();
+                assert!(w <= 100, "{name}: a {w}-column line wraps at 100:\n{line}");
+            }
+        }
+        insta::assert_snapshot!(*name, out);
     }
+    let wide = run(&ws, &["analyze", "one_page_checkout", "--wide"]);
+    assert!(
+        wide.lines().any(|l| l.chars().count() > 150),
+        "--wide keeps one line per result"
+    );
 
     // `diff`: a definition change between the committed catalog and the working tree.
     git(&ws, &["init", "-q", "-b", "main"]);

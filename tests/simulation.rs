@@ -91,6 +91,7 @@ fn cuped_reduces_variance_by_rho_squared() {
         }
         let options = stats::analysis::Options {
             alpha: 0.05,
+            plan_alpha: 0.05,
             cuped: true,
             sequential: false,
             power: 0.8,
@@ -141,6 +142,140 @@ fn sequential_mode_keeps_false_positives_under_daily_looks() {
         naive > 0.1,
         "peeking at fixed-sample p-values inflates errors ({naive})"
     );
+}
+
+/// A 0/1 metric as the readout sees it: n units, x of them with a 1.
+fn binary_arm(x: u64, n: u64) -> stats::analysis::ArmMoments {
+    let p = x as f64 / n as f64;
+    stats::analysis::ArmMoments::Mean {
+        y: Moments {
+            n,
+            mean: p,
+            var: p * (1.0 - p) * n as f64 / (n as f64 - 1.0),
+        },
+        covariate: None,
+    }
+}
+
+fn binomial(rng: &mut Rng, n: u64, p: f64) -> u64 {
+    (0..n).filter(|_| rng.uniform() < p).count() as u64
+}
+
+/// Small samples of a rare 0/1 metric (2% and 5% rates, 20 to 100 units per arm): the
+/// readout's interval (Newcombe's hybrid score interval below 10 events, chosen by the
+/// documented rule) covers the true difference at least 94% of the time in 2,000 draws, where
+/// the Wald interval it replaced covers less (about 75% at 20 units, 91% at 50, 94% at 100 in
+/// a statsmodels run of the same design; Newcombe 1998 reports the same pattern). Fisher's test keeps the false-positive rate at or
+/// below α when both arms have the same rate.
+#[test]
+fn small_binary_samples_keep_coverage_and_error_rates() {
+    let o = stats::analysis::Options {
+        alpha: 0.05,
+        plan_alpha: 0.05,
+        cuped: false,
+        sequential: false,
+        power: 0.8,
+    };
+    let mut rng = Rng(11);
+    for n in [20u64, 50, 100] {
+        let (pc, pt) = (0.02, 0.05);
+        let (mut covered, mut wald_covered, mut draws) = (0, 0, 0);
+        let mut false_positives = 0;
+        for _ in 0..2000 {
+            let (xc, xt) = (binomial(&mut rng, n, pc), binomial(&mut rng, n, pt));
+            let (c, t) = (binary_arm(xc, n), binary_arm(xt, n));
+            let cmp = stats::analysis::compare(&c, &t, &[c, t], true, None, &o);
+            let d = cmp.difference.unwrap();
+            draws += 1;
+            covered += usize::from(d.ci_low <= pt - pc && pt - pc <= d.ci_high);
+            let w = stats::two_proportions(xt, n, xc, n, 0.05, false).unwrap();
+            wald_covered += usize::from(w.ci_low <= pt - pc && pt - pc <= w.ci_high);
+            // A/A: both arms at the control rate.
+            let xa = binomial(&mut rng, n, pc);
+            let a = binary_arm(xa, n);
+            let aa = stats::analysis::compare(&c, &a, &[c, a], true, None, &o);
+            let d = aa.difference.unwrap();
+            let excludes = d.ci_low > 0.0 || d.ci_high < 0.0;
+            false_positives += usize::from(d.p_value.is_some_and(|p| p < 0.05) && excludes);
+        }
+        let rate = covered as f64 / draws as f64;
+        let wald = wald_covered as f64 / draws as f64;
+        let fp = false_positives as f64 / draws as f64;
+        assert!(rate >= 0.94, "n = {n}: coverage {rate}");
+        assert!(wald < rate, "n = {n}: Wald {wald} vs {rate}");
+        assert!(fp <= 0.05, "n = {n}: false positives {fp}");
+    }
+}
+
+/// The published case: 3/3 vs 0/3 is not significant (Fisher's exact p = 0.1), where the
+/// pooled z test said p = 0.014.
+#[test]
+fn three_of_three_against_none_is_not_a_detected_change() {
+    let o = stats::analysis::Options {
+        alpha: 0.05,
+        plan_alpha: 0.05,
+        cuped: false,
+        sequential: false,
+        power: 0.8,
+    };
+    let (c, t) = (binary_arm(0, 3), binary_arm(3, 3));
+    let cmp = stats::analysis::compare(&c, &t, &[c, t], true, None, &o);
+    assert_eq!(cmp.method, stats::analysis::Method::FisherNewcombe);
+    let p = cmp.difference.unwrap().p_value.unwrap();
+    assert!((p - 0.1).abs() < 1e-12, "{p}");
+}
+
+/// Power is planned for the test the verdict uses: with m primary rows adjusted by Holm, an
+/// effect equal to the MDE reported at α/m is detected by Holm in at least 80% of 20,000
+/// draws of the estimates (normal, independent rows; every row has that effect), where the
+/// unadjusted MDE gives clearly less. Under the always-valid test, an effect equal to the
+/// sequential MDE is detected at the last look about 80% of the time.
+#[test]
+fn reported_mde_has_the_stated_power_under_holm_and_sequential() {
+    let mut rng = Rng(12);
+    let se = 1.0;
+    for m in [2usize, 3, 4] {
+        let planned = stats::power::mde(se, 0.05 / m as f64, 0.8);
+        let naive = stats::power::mde(se, 0.05, 0.8);
+        let (mut hits_planned, mut hits_naive, mut total) = (0, 0, 0);
+        for _ in 0..20_000 {
+            for (delta, hits) in [(planned, &mut hits_planned), (naive, &mut hits_naive)] {
+                let p: Vec<f64> = (0..m)
+                    .map(|_| {
+                        let z = (delta + se * rng.normal()) / se;
+                        2.0 * (1.0 - normal_cdf(z.abs()))
+                    })
+                    .collect();
+                let adj = stats::multiple::holm(&p);
+                *hits += adj.iter().filter(|a| **a < 0.05).count();
+            }
+            total += m;
+        }
+        let (pp, pn) = (
+            hits_planned as f64 / total as f64,
+            hits_naive as f64 / total as f64,
+        );
+        assert!(pp >= 0.8, "m = {m}: power at the planned MDE {pp}");
+        assert!(pn < 0.78, "m = {m}: power at the unadjusted MDE {pn}");
+    }
+    let tau = 0.5;
+    let mde = stats::power::mde_sequential(se, tau, 0.05, 0.8);
+    let mut hits = 0;
+    for _ in 0..20_000 {
+        let est = mde + se * rng.normal();
+        let (p, _, _) = stats::sequential::msprt(est, se * se, tau, 0.05).unwrap();
+        hits += usize::from(p < 0.05);
+    }
+    let power = hits as f64 / 20_000.0;
+    assert!(
+        (0.79..=0.81).contains(&power),
+        "sequential power at its MDE {power}"
+    );
+}
+
+fn normal_cdf(x: f64) -> f64 {
+    use statrs::distribution::{ContinuousCDF, Normal};
+    Normal::new(0.0, 1.0).unwrap().cdf(x)
 }
 
 fn moments() -> impl Strategy<Value = Moments> {

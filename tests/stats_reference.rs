@@ -324,9 +324,43 @@ fn cuped_matches_derived_values() {
     let adj = stats::welch(&c, &t, 0.05).unwrap();
     assert_close(adj.estimate, 1.1059288538, 5e-11, "CUPED difference");
     assert_close(adj.se, 0.1921614492, 5e-11, "CUPED SE");
-    // Identity: with the within-arm slope the difference is the ANCOVA coefficient.
-    let within = arms.iter().map(|a| (a.y.n as f64 - 1.0) * a.cov).sum::<f64>()
-        / arms.iter().map(|a| (a.y.n as f64 - 1.0) * a.x.var).sum::<f64>();
-    let d = (arms[1].y.mean - arms[0].y.mean) - within * (arms[1].x.mean - arms[0].x.mean);
-    assert_close(d, 1.1065536723, 5e-11, "ANCOVA identity");
+    // Identity: with the within-arm slope (what the readout uses) the difference is the
+    // ANCOVA coefficient of Y ~ 1 + T + X.
+    let within = stats::cuped::within_theta(&arms).unwrap();
+    let (c, t) = (
+        stats::cuped::adjust(&arms[0], within, mx),
+        stats::cuped::adjust(&arms[1], within, mx),
+    );
+    assert_close(t.mean - c.mean, 1.1065536723, 5e-11, "ANCOVA identity");
+}
+
+/// Fisher's exact test. Published: R's `fisher.test` on Fisher's tea-tasting table
+/// [[3, 1], [1, 3]] gives two-sided p = 0.4857 (Agresti, "Categorical Data Analysis", 2nd ed.,
+/// §3.5.2, Table 3.8); 3/3 vs 0/3 gives p = 0.1 (= 2/20, computed by hand from the
+/// hypergeometric distribution: tables 3-0 and 0-3 each have probability 1/20).
+#[test]
+fn fisher_exact_matches_published_values() {
+    let tea = stats::exact::fisher_two_sided(3, 4, 1, 4).unwrap();
+    assert_close(tea, 0.4857, 5e-5, "tea tasting");
+    let tiny = stats::exact::fisher_two_sided(3, 3, 0, 3).unwrap();
+    assert_close(tiny, 0.1, 1e-12, "3/3 vs 0/3");
+}
+
+/// Newcombe's hybrid score interval, Newcombe (1998), Statistics in Medicine 17, Table II,
+/// method 10 (values recalled from memory, and equal to statsmodels
+/// `confint_proportions_2indep(method="newcomb")` to 4 decimals).
+#[test]
+fn newcombe_interval_matches_published_values() {
+    let cases = [
+        ((56, 70, 48, 80), (0.0524, 0.3339)),
+        ((9, 10, 3, 10), (0.1705, 0.8090)),
+        ((6, 7, 2, 7), (0.0582, 0.8062)),
+        ((5, 56, 0, 29), (-0.0381, 0.1926)),
+        ((0, 10, 0, 20), (-0.1611, 0.2775)),
+    ];
+    for ((x1, n1, x2, n2), (lo, hi)) in cases {
+        let (l, h) = stats::exact::newcombe(x1, n1, x2, n2, 0.05).unwrap();
+        assert_close(l, lo, 5e-5, &format!("{x1}/{n1} - {x2}/{n2} low"));
+        assert_close(h, hi, 5e-5, &format!("{x1}/{n1} - {x2}/{n2} high"));
+    }
 }

@@ -16,6 +16,9 @@ pub struct AnalyzeArgs {
     alpha: f64,
     #[arg(long, value_enum, default_value = "table")]
     format: Format,
+    /// One line per result (about 190 columns) instead of intervals under the estimates.
+    #[arg(long)]
+    wide: bool,
     /// Extra segments to slice by, comma-separated (shown as exploratory rows).
     #[arg(long, value_delimiter = ',', value_name = "SEGMENT,...")]
     by: Vec<String>,
@@ -54,6 +57,7 @@ pub struct Settings {
     pub by: Vec<String>,
     pub options: ReadoutOptions,
     pub format: Format,
+    pub style: crate::output::TextStyle,
     pub source: Source,
 }
 
@@ -79,6 +83,7 @@ impl Settings {
                 max_metrics: a.max_metrics,
             },
             format: a.format,
+            style: crate::output::TextStyle { wide: a.wide },
             source,
         })
     }
@@ -111,14 +116,14 @@ pub fn run(global: &Global, s: Settings) -> Result<Outcome> {
             super::with_progress(&message, || ctx.readout(id, &by, s.options))?
         }
     };
-    Ok(readout_outcome(&readout, s.format))
+    Ok(readout_outcome(&readout, s.format, &s.style))
 }
 
 /// The readout as text or JSON; exit code 3 when it must block a decision.
-pub fn readout_outcome(readout: &Readout, format: Format) -> Outcome {
+pub fn readout_outcome(readout: &Readout, format: Format, style: &crate::output::TextStyle) -> Outcome {
     let blocked = readout.void || !readout.guardrails_failed.is_empty();
     let text = match format {
-        Format::Table => crate::output::readout_text(readout),
+        Format::Table => crate::output::readout_text(readout, style),
         Format::Json => crate::output::readout_json(readout),
     };
     Outcome::stdout(text).with_code(if blocked { EXIT_CHECKS } else { 0 })

@@ -53,7 +53,7 @@ pub fn run(global: &Global, a: DemoArgs) -> Result<Outcome> {
     let readout = super::with_progress("running the demo readout on local DuckDB", || {
         ctx.readout(id, &[], options)
     })?;
-    let shown = super::analyze::readout_outcome(&readout, Format::Table);
+    let shown = super::analyze::readout_outcome(&readout, Format::Table, &Default::default());
     parts.extend(shown.parts);
     parts.push(Part::Stderr(format!(
         "plumb: next, try `plumb --workspace {} analyze care_guide_banner` (an A/A test) or `plumb --workspace {} sql {}`\n",

@@ -112,9 +112,8 @@ pub fn run(global: &Global, a: DiffArgs) -> Result<Outcome> {
         changes,
         affected_experiments: affected,
     };
-    use std::io::IsTerminal;
     let text = match a.format {
-        DiffFormat::Table => crate::diff::text_output(&d, std::io::stdout().is_terminal()),
+        DiffFormat::Table => crate::diff::text_output(&d, true),
         DiffFormat::Markdown => crate::diff::markdown_output(&d),
         DiffFormat::Json => super::json(&d)?,
     };

@@ -54,8 +54,35 @@ pub struct Args {
     /// Extra dialect folders, searched before the built-in ones.
     #[arg(long, global = true, value_name = "DIR")]
     pub dialects_dir: Option<PathBuf>,
+    /// Colour on a terminal: `auto` (when the output is a terminal and NO_COLOR is not set),
+    /// `always` or `never`.
+    #[arg(long, global = true, value_enum, default_value = "auto")]
+    pub color: ColorChoice,
     #[command(subcommand)]
     pub command: Command,
+}
+
+#[derive(Debug, Clone, Copy, ValueEnum, PartialEq, Eq)]
+pub enum ColorChoice {
+    Auto,
+    Always,
+    Never,
+}
+
+impl ColorChoice {
+    /// Whether to colour a stream that is (or is not) a terminal; `auto` follows the NO_COLOR
+    /// convention (any non-empty value turns colour off) and a `dumb` TERM.
+    fn enabled(self, terminal: bool) -> bool {
+        match self {
+            ColorChoice::Always => true,
+            ColorChoice::Never => false,
+            ColorChoice::Auto => {
+                terminal
+                    && std::env::var_os("NO_COLOR").is_none_or(|v| v.is_empty())
+                    && std::env::var_os("TERM").is_none_or(|t| t != "dumb")
+            }
+        }
+    }
 }
 
 #[derive(Debug, Clone, Copy, ValueEnum, PartialEq, Eq)]
@@ -163,12 +190,17 @@ pub fn run() -> ExitCode {
         Command::Power(a) => power::Settings::from_args(a).and_then(|s| power::run(&global, s)),
         Command::Demo(a) => demo::run(&global, a),
     };
+    use std::io::IsTerminal;
+    let color_out = args.color.enabled(std::io::stdout().is_terminal());
+    let color_err = args.color.enabled(std::io::stderr().is_terminal());
     match result {
         Ok(outcome) => {
             for part in outcome.parts {
                 match part {
-                    Part::Stdout(text) => emit(&terminal_safe(&text)),
-                    Part::Stderr(text) => eprint!("{}", terminal_safe(&text)),
+                    Part::Stdout(text) => emit(&crate::output::colorize(&terminal_safe(&text), color_out)),
+                    Part::Stderr(text) => {
+                        eprint!("{}", crate::output::colorize(&terminal_safe(&text), color_err))
+                    }
                 }
             }
             ExitCode::from(outcome.code)

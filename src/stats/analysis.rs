@@ -1,12 +1,13 @@
 //! One comparison: a metric in a treatment arm against control, from arm-level moments.
 //!
-//! Chooses the estimator (Welch for means, two proportions for 0/1 metrics, delta method for
-//! ratios), applies CUPED when covariate moments are present (ratio metrics through their
-//! linearisation), switches to always-valid inference on request, and computes the MDE and
-//! power of the comparison. Pure: moments in, estimates out.
+//! Chooses the estimator (Welch for means, two proportions for 0/1 metrics, Fisher's exact test
+//! with Newcombe's interval for 0/1 metrics with few events, delta method for ratios), applies
+//! CUPED when covariate moments are present (ratio metrics through their linearisation),
+//! switches to always-valid inference on request, and computes the MDE and power of the test
+//! actually used. Pure: moments in, estimates out.
 
 use super::cuped::{self, Paired};
-use super::{Estimate, Moments, RatioMoments, estimate_normal, power, relative, sequential, welch};
+use super::{Estimate, Moments, RatioMoments, estimate_normal, exact, power, relative, sequential, welch};
 
 /// Moments of one arm for one metric, as the statistics table gives them.
 #[derive(Debug, Clone, Copy)]
@@ -37,11 +38,39 @@ pub struct RatioCovariate {
 
 #[derive(Debug, Clone, Copy)]
 pub struct Options {
+    /// Two-sided level of the interval (the p-value does not depend on it).
     pub alpha: f64,
+    /// Level the MDE and power are computed at: the level the row's verdict effectively uses
+    /// (e.g. α/m for a Holm family of m rows).
+    pub plan_alpha: f64,
     pub cuped: bool,
     pub sequential: bool,
     /// Target power for the MDE (common practice: 0.8).
     pub power: f64,
+}
+
+/// The estimator behind a row (`method` in JSON).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Method {
+    /// Welch's t on per-unit values.
+    Welch,
+    /// Two proportions: Wald interval, pooled z test.
+    TwoProportions,
+    /// Few events: Fisher's exact test and Newcombe's hybrid score interval.
+    FisherNewcombe,
+    /// Ratio of means by the delta method.
+    DeltaRatio,
+}
+
+/// Why a row with data has no test.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Untestable {
+    /// Every unit has the same value within each arm, and the arms differ.
+    NoVariation,
+    /// Sequential mode needs a nonzero control value to fix its mixing scale.
+    SequentialZeroControl,
+    /// Sequential mode relies on the normal approximation, which few events do not support.
+    SequentialFewEvents,
 }
 
 #[derive(Debug, Clone, Copy)]
@@ -56,6 +85,28 @@ pub struct Comparison {
     pub power_at_declared: Option<f64>,
     /// The control value the relative numbers refer to.
     pub control_value: Option<f64>,
+    pub method: Method,
+    /// Set when the row has data but no valid test; its p-value is then `None`.
+    pub untestable: Option<Untestable>,
+}
+
+impl Comparison {
+    /// Machine-friendly code of the method actually used, e.g. `cuped_welch`, `msprt_welch`.
+    pub fn method_code(&self, sequential: bool) -> String {
+        let base = match self.method {
+            Method::Welch => "welch",
+            Method::TwoProportions => "two_proportions",
+            Method::FisherNewcombe => "fisher_newcombe",
+            Method::DeltaRatio => "delta_ratio",
+        };
+        let cuped = if self.cuped.is_some() { "cuped_" } else { "" };
+        let seq = if sequential && self.method != Method::FisherNewcombe {
+            "msprt_"
+        } else {
+            ""
+        };
+        format!("{seq}{cuped}{base}")
+    }
 }
 
 /// A ratio arm linearised: y = (N − R·D)/μ_D, x likewise for the covariate (Deng, Knoblich &
@@ -83,17 +134,50 @@ fn linearise(r: &RatioMoments, c: &RatioCovariate) -> Linear {
     }
 }
 
-/// Relative difference from two arm means and the variances of those means (delta method,
-/// Deng, Knoblich & Lu 2018): Var(t/c) ≈ v_t/c² + t²·v_c/c⁴.
+/// Relative difference (t − c)/|c| from two arm means and the variances of those means (delta
+/// method, Deng, Knoblich & Lu 2018): Var ≈ v_t/c² + t²·v_c/c⁴. Dividing by |c| keeps the sign
+/// of the difference when the control value is negative.
 fn relative_of(c: f64, vc: f64, t: f64, vt: f64, alpha: f64) -> Option<Estimate> {
     if c == 0.0 {
         return None;
     }
-    estimate_normal(t / c - 1.0, (vt / (c * c) + t * t * vc / c.powi(4)).sqrt(), alpha)
+    estimate_normal(
+        (t - c) / c.abs(),
+        (vt / (c * c) + t * t * vc / c.powi(4)).sqrt(),
+        alpha,
+    )
+}
+
+/// A 0/1 comparison with few events: Fisher's p-value, Newcombe's interval; the relative
+/// interval divides the difference interval by the control rate (treated as known). The SE
+/// reported (and used for the MDE) is the pooled one of the test under no difference.
+fn exact_binary(xc: u64, nc: u64, xt: u64, nt: u64, alpha: f64) -> Option<(Estimate, Option<Estimate>)> {
+    let p = exact::fisher_two_sided(xt, nt, xc, nc)?;
+    let (lo, hi) = exact::newcombe(xt, nt, xc, nc, alpha)?;
+    let (pc, pt) = (xc as f64 / nc as f64, xt as f64 / nt as f64);
+    let pooled = (xc + xt) as f64 / (nc + nt) as f64;
+    let se0 = (pooled * (1.0 - pooled) * (1.0 / nc as f64 + 1.0 / nt as f64)).sqrt();
+    let d = Estimate {
+        estimate: pt - pc,
+        se: se0,
+        ci_low: lo,
+        ci_high: hi,
+        p_value: Some(p),
+        df: f64::INFINITY,
+    };
+    let rel = (pc > 0.0).then(|| Estimate {
+        estimate: (pt - pc) / pc,
+        se: se0 / pc,
+        ci_low: lo / pc,
+        ci_high: hi / pc,
+        p_value: Some(p),
+        df: f64::INFINITY,
+    });
+    Some((d, rel))
 }
 
 /// Compares `treatment` with `control`; `group` holds every planned arm of the same slice
-/// (for θ, which is pooled over arms). `binary` marks 0/1 metrics.
+/// (for θ, which is estimated within arms and pooled over them). `binary` marks 0/1 metrics.
 pub fn compare(
     control: &ArmMoments,
     treatment: &ArmMoments,
@@ -109,12 +193,33 @@ pub fn compare(
         mde: None,
         power_at_declared: None,
         control_value: None,
+        method: Method::Welch,
+        untestable: None,
     };
     match (control, treatment) {
         (ArmMoments::Mean { y: c, covariate: cc }, ArmMoments::Mean { y: t, covariate: tc }) => {
             out.control_value = Some(c.mean);
-            let raw = if binary && c.var.is_finite() && t.var.is_finite() {
-                let x = |m: &Moments| (m.mean * m.n as f64).round() as u64;
+            let x = |m: &Moments| (m.mean * m.n as f64).round() as u64;
+            let binary = binary && c.var.is_finite() && t.var.is_finite();
+            if binary && exact::needs_exact(x(c), c.n, x(t), t.n) {
+                out.method = Method::FisherNewcombe;
+                if let Some((d, rel)) = exact_binary(x(c), c.n, x(t), t.n, o.alpha) {
+                    out.difference = Some(d);
+                    out.relative = rel;
+                    if o.sequential {
+                        out.untestable = Some(Untestable::SequentialFewEvents);
+                        out.difference = Some(Estimate { p_value: None, ..d });
+                    } else if d.se > 0.0 {
+                        out.mde = Some(power::mde(d.se, o.plan_alpha, o.power));
+                        if let (Some(m), Some(cv)) = (declared_mde, Some(c.mean).filter(|v| *v > 0.0)) {
+                            out.power_at_declared = Some(power::power_normal(m * cv, d.se, o.plan_alpha));
+                        }
+                    }
+                }
+                return out;
+            }
+            let raw = if binary {
+                out.method = Method::TwoProportions;
                 super::two_proportions(x(t), t.n, x(c), c.n, o.alpha, false)
             } else {
                 welch(c, t, o.alpha)
@@ -138,7 +243,7 @@ pub fn compare(
                         _ => None,
                     })
                     .collect();
-                if let Some(theta) = cuped::pooled_theta(&pairs) {
+                if let Some(theta) = cuped::within_theta(&pairs) {
                     let mx = cuped::pooled_x_mean(&pairs);
                     let ca = cuped::adjust(
                         &Paired {
@@ -178,6 +283,7 @@ pub fn compare(
             }
         }
         (ArmMoments::Ratio { r: c, covariate: cc }, ArmMoments::Ratio { r: t, covariate: tc }) => {
+            out.method = Method::DeltaRatio;
             out.control_value = Some(c.ratio());
             out.difference = super::ratio_difference(c, t, o.alpha);
             out.relative = super::ratio_relative(c, t, o.alpha);
@@ -224,30 +330,52 @@ pub fn compare(
         _ => {}
     }
     let cv = out.control_value.map(f64::abs).filter(|v| *v > 0.0);
-    if let Some(d) = out.difference.filter(|d| d.se > 0.0) {
-        out.mde = Some(power::mde(d.se, o.alpha, o.power));
-        if let (Some(m), Some(cv)) = (declared_mde, cv) {
-            out.power_at_declared = Some(power::power_normal(m * cv, d.se, o.alpha));
+    let Some(d) = out.difference else {
+        return out;
+    };
+    if d.se == 0.0 {
+        // Both arms constant: no sampling variation to test against. Equal arms are simply no
+        // change; different ones cannot be tested, and saying "no detectable change" would
+        // hide a difference that is plainly there.
+        if d.estimate != 0.0 {
+            out.untestable = Some(Untestable::NoVariation);
         }
-        if o.sequential {
-            // Mixing scale τ fixed before looking: the declared MDE, else 5% of control.
-            let tau = cv.map(|cv| declared_mde.unwrap_or(0.05) * cv).unwrap_or(d.se);
-            if let Some((p, lo, hi)) = sequential::msprt(d.estimate, d.se * d.se, tau, o.alpha) {
-                out.difference = Some(Estimate {
-                    p_value: Some(p),
-                    ci_low: lo,
-                    ci_high: hi,
-                    ..d
-                });
-                if let (Some(rel), Some(c)) = (out.relative, out.control_value.filter(|c| *c != 0.0)) {
-                    out.relative = Some(Estimate {
-                        p_value: Some(p),
-                        ci_low: lo / c.abs(),
-                        ci_high: hi / c.abs(),
-                        ..rel
-                    });
-                }
-            }
+        return out;
+    }
+    if !o.sequential {
+        out.mde = Some(power::mde(d.se, o.plan_alpha, o.power));
+        if let (Some(m), Some(cv)) = (declared_mde, cv) {
+            out.power_at_declared = Some(power::power_normal(m * cv, d.se, o.plan_alpha));
+        }
+        return out;
+    }
+    // Mixing scale τ fixed before looking: the declared MDE, else 5% of the control value.
+    // Without a control value there is nothing to fix it by, and a scale taken from the data
+    // being tested would void the always-valid guarantee.
+    let Some(cv) = cv else {
+        out.untestable = Some(Untestable::SequentialZeroControl);
+        out.difference = Some(Estimate { p_value: None, ..d });
+        return out;
+    };
+    let tau = declared_mde.unwrap_or(0.05) * cv;
+    out.mde = Some(power::mde_sequential(d.se, tau, o.plan_alpha, o.power));
+    if let Some(m) = declared_mde {
+        out.power_at_declared = Some(power::power_sequential(m * cv, d.se, tau, o.plan_alpha));
+    }
+    if let Some((p, lo, hi)) = sequential::msprt(d.estimate, d.se * d.se, tau, o.alpha) {
+        out.difference = Some(Estimate {
+            p_value: Some(p),
+            ci_low: lo,
+            ci_high: hi,
+            ..d
+        });
+        if let Some(rel) = out.relative {
+            out.relative = Some(Estimate {
+                p_value: Some(p),
+                ci_low: lo / cv,
+                ci_high: hi / cv,
+                ..rel
+            });
         }
     }
     out

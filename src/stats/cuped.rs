@@ -3,8 +3,12 @@
 //! Deng, Xu, Kohavi & Walker (2013), "Improving the Sensitivity of Online Controlled
 //! Experiments by Utilizing Pre-Experiment Data", WSDM, §3.2: Ŷ_cv = Ȳ − θ(X̄ − E X) with
 //! θ = Cov(Y, X) / Var(X) minimises the variance; the same θ is used in every arm, so the
-//! adjustment leaves the expected difference unchanged. Here θ is estimated on all exposed
-//! units pooled over arms (arm labels ignored), from the arm-level moments alone.
+//! adjustment leaves the expected difference unchanged. Here θ is the within-arm slope: the
+//! covariance and variance are pooled over arms around each arm's own means (the ANCOVA slope),
+//! from the arm-level moments alone. A total-sample θ would also absorb the treatment effect
+//! through the between-arm term and shrink small-sample effects; the within-arm θ makes the
+//! adjusted difference equal the OLS treatment coefficient of Y ~ 1 + T + X, and it is the
+//! same θ the ratio-metric CUPED uses.
 
 use super::Moments;
 
@@ -24,8 +28,24 @@ impl Paired {
     }
 }
 
+/// θ = Σₐ (nₐ − 1)·cov(y, x)ₐ / Σₐ (nₐ − 1)·var(x)ₐ: the pooled within-arm slope.
+pub fn within_theta(arms: &[Paired]) -> Option<f64> {
+    if arms.iter().any(|a| a.y.n != a.x.n || a.y.n < 2) || arms.is_empty() {
+        return None;
+    }
+    let (mut sxy, mut sxx) = (0.0, 0.0);
+    for a in arms {
+        let na = a.y.n as f64;
+        sxy += (na - 1.0) * a.cov;
+        sxx += (na - 1.0) * a.x.var;
+    }
+    let theta = sxy / sxx;
+    (sxx > 0.0 && theta.is_finite()).then_some(theta)
+}
+
 /// θ from the total-sample covariance and variance of all units, recovered from per-arm
-/// moments: S_xy = Σ[(n_a − 1)·c_a + n_a·(x̄_a − x̄)(ȳ_a − ȳ)] / (N − 1), likewise S_xx.
+/// moments: S_xy = Σ[(n_a − 1)·c_a + n_a·(x̄_a − x̄)(ȳ_a − ȳ)] / (N − 1), likewise S_xx. Not used
+/// by the readout (see the module doc); kept as the textbook form the tests compare against.
 pub fn pooled_theta(arms: &[Paired]) -> Option<f64> {
     let n: f64 = arms.iter().map(|a| a.y.n as f64).sum();
     if n < 3.0 || arms.iter().any(|a| a.y.n != a.x.n || a.y.n < 2) {

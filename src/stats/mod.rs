@@ -6,6 +6,7 @@
 
 pub mod analysis;
 pub mod cuped;
+pub mod exact;
 pub mod multiple;
 pub mod power;
 pub mod readout;
@@ -138,17 +139,19 @@ pub fn welch(control: &Moments, treatment: &Moments, alpha: f64) -> Option<Estim
     estimate(treatment.mean - control.mean, se, df, alpha)
 }
 
-/// Relative difference of means, mean_t / mean_c - 1, with a delta-method interval.
+/// Relative difference of means, (mean_t − mean_c) / |mean_c|, with a delta-method interval.
 ///
 /// Var(Ȳt/Ȳc) ≈ Var(Ȳt)/Ȳc² + Ȳt²·Var(Ȳc)/Ȳc⁴ for independent arms (Deng, Knoblich & Lu 2018,
 /// "Applying the Delta Method in Metric Analytics", KDD, §3); normal reference distribution.
+/// Dividing by |mean_c| equals mean_t/mean_c − 1 for a positive control mean and keeps the
+/// sign of the difference for a negative one (the variance is the same).
 pub fn relative(control: &Moments, treatment: &Moments, alpha: f64) -> Option<Estimate> {
     if control.n < 2 || treatment.n < 2 || control.mean == 0.0 {
         return None;
     }
     let (mc, mt) = (control.mean, treatment.mean);
     let var = treatment.var_of_mean() / (mc * mc) + mt * mt * control.var_of_mean() / mc.powi(4);
-    estimate(mt / mc - 1.0, var.sqrt(), f64::INFINITY, alpha)
+    estimate((mt - mc) / mc.abs(), var.sqrt(), f64::INFINITY, alpha)
 }
 
 /// Per-arm moments of a ratio metric: numerator and denominator per unit and their covariance.
@@ -195,14 +198,14 @@ pub fn ratio_difference(control: &RatioMoments, treatment: &RatioMoments, alpha:
     )
 }
 
-/// Relative difference of two ratio metrics, R_t/R_c − 1, delta method (same paper, §3).
+/// Relative difference of two ratio metrics, (R_t − R_c)/|R_c|, delta method (same paper, §3).
 pub fn ratio_relative(control: &RatioMoments, treatment: &RatioMoments, alpha: f64) -> Option<Estimate> {
     if !control.usable() || !treatment.usable() || control.ratio() == 0.0 {
         return None;
     }
     let (rc, rt) = (control.ratio(), treatment.ratio());
     let var = treatment.var_of_ratio() / (rc * rc) + rt * rt * control.var_of_ratio() / rc.powi(4);
-    estimate(rt / rc - 1.0, var.max(0.0).sqrt(), f64::INFINITY, alpha)
+    estimate((rt - rc) / rc.abs(), var.max(0.0).sqrt(), f64::INFINITY, alpha)
 }
 
 /// Result of the sample-ratio check.

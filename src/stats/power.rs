@@ -180,3 +180,26 @@ pub fn study(mean: f64, sd: f64, target: &Target) -> Option<Study> {
         detectable,
     })
 }
+
+/// Critical |estimate|/SE of the always-valid mSPRT at its last look (see `sequential`): the
+/// normal-mixture boundary half-width over the SE,
+/// sqrt((V + τ²)/τ² · (2 log(1/α) + log((V + τ²)/V))) with V = SE².
+pub fn sequential_critical(se: f64, tau: f64, alpha: f64) -> f64 {
+    let v = se * se;
+    let t2 = tau * tau;
+    ((v + t2) / t2 * (2.0 * (1.0 / alpha).ln() + ((v + t2) / v).ln())).sqrt()
+}
+
+/// MDE of the always-valid test if the data were looked at only once, at the current sample
+/// size: (c_seq + z_power)·SE. Conservative for a test that is monitored, because crossing the
+/// boundary at an earlier look also counts as a detection.
+pub fn mde_sequential(se: f64, tau: f64, alpha: f64, power: f64) -> f64 {
+    (sequential_critical(se, tau, alpha) + z_quantile(power)) * se
+}
+
+/// Power of the always-valid test at its last look to detect `delta` (lower bound, as above).
+pub fn power_sequential(delta: f64, se: f64, tau: f64, alpha: f64) -> f64 {
+    let c = sequential_critical(se, tau, alpha);
+    let s = delta.abs() / se;
+    phi(s - c) + phi(-s - c)
+}

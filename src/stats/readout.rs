@@ -100,8 +100,16 @@ pub enum MetricShape {
     },
 }
 
+/// Version of the readout JSON document; bumped when a key changes meaning (keys are only
+/// ever added, never renamed).
+pub const SCHEMA_VERSION: u32 = 2;
+
 #[derive(Debug, Clone, Serialize)]
 pub struct Readout {
+    /// See [`SCHEMA_VERSION`].
+    pub schema_version: u32,
+    /// The decision in one or two lines: void, failed guardrails, the primary verdicts.
+    pub headline: Vec<String>,
     pub experiment: String,
     pub control: String,
     pub alpha: f64,
@@ -176,6 +184,9 @@ pub enum Change {
     NoDetectableChange,
     #[serde(rename = "not enough data")]
     NotEnoughData,
+    /// Data in both arms but no valid test (e.g. every value equal within each arm).
+    #[serde(rename = "not testable")]
+    NotTestable,
 }
 
 impl Change {
@@ -186,6 +197,7 @@ impl Change {
             Change::Decrease => "decrease",
             Change::NoDetectableChange => "no detectable change",
             Change::NotEnoughData => "not enough data",
+            Change::NotTestable => "not testable",
         }
     }
 
@@ -209,6 +221,8 @@ pub enum Verdict {
     NoDetectableChange,
     #[serde(rename = "not enough data")]
     NotEnoughData,
+    #[serde(rename = "not testable")]
+    NotTestable,
 }
 
 impl Verdict {
@@ -220,6 +234,7 @@ impl Verdict {
             Verdict::Changed => "changed",
             Verdict::NoDetectableChange => "no detectable change",
             Verdict::NotEnoughData => "not enough data",
+            Verdict::NotTestable => "not testable",
         }
     }
 
@@ -244,6 +259,7 @@ impl Verdict {
             (Change::Increase | Change::Decrease, None) => Verdict::Changed,
             (Change::NoDetectableChange, _) => Verdict::NoDetectableChange,
             (Change::NotEnoughData, _) => Verdict::NotEnoughData,
+            (Change::NotTestable, _) => Verdict::NotTestable,
         }
     }
 }
@@ -314,6 +330,14 @@ pub struct ResultRow {
     /// The multiple-testing family: `primary (Holm)`, `secondary (Benjamini-Hochberg)`,
     /// `segment (Benjamini-Hochberg)` or `guardrail (unadjusted)`.
     pub family: Family,
+    /// The estimator used: `welch`, `two_proportions`, `fisher_newcombe`, `delta_ratio`, with a
+    /// `cuped_` and/or `msprt_` prefix when CUPED or the sequential test was applied.
+    pub method: String,
+    /// Why a row with data has no test (`no_variation`, `sequential_zero_control`,
+    /// `sequential_few_events`); null otherwise.
+    pub not_testable: Option<&'static str>,
+    /// A segment row of a segment chosen after the fact (not declared on the experiment).
+    pub exploratory: bool,
     pub cuped: Option<CupedOut>,
     pub power: PowerOut,
     /// The effect if the arm were shipped to every unit that would trigger it (overall rows of
@@ -370,8 +394,15 @@ pub struct CupedOut {
 
 #[derive(Debug, Clone, Serialize)]
 pub struct PowerOut {
-    /// Minimum detectable effect (absolute) at the current sample size, alpha and 80% power.
+    /// Minimum detectable effect (absolute) at the current sample size and 80% power, for the
+    /// test the verdict uses (at `planned_alpha`; the always-valid test in sequential mode).
     pub mde: Option<f64>,
+    /// Two-sided level the MDE and power are computed at: α/m for a Holm family of m rows,
+    /// α otherwise.
+    pub planned_alpha: f64,
+    /// "No detectable change" here says little: power at the declared MDE is below 80%, or
+    /// (without a declared MDE) the relative MDE is above 5%.
+    pub low_power: bool,
     /// The same relative to the control value.
     pub mde_relative: Option<f64>,
     /// The declared `mde` (relative), if any.
@@ -405,6 +436,12 @@ pub struct DifferenceOut {
     pub se: f64,
     /// Welch–Satterthwaite degrees of freedom; null for the normal (delta-method) reference.
     pub df: Option<f64>,
+    /// The interval at the level the row's verdict uses (see README, "Intervals"): equal to
+    /// the raw one for guardrails, wider for rows of an adjusted family.
+    pub adjusted_ci_low: f64,
+    pub adjusted_ci_high: f64,
+    /// Confidence level of the adjusted interval, e.g. 0.975.
+    pub adjusted_confidence: f64,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -412,6 +449,9 @@ pub struct RelativeOut {
     pub estimate: f64,
     pub ci_low: f64,
     pub ci_high: f64,
+    /// At the level of `difference.adjusted_confidence`.
+    pub adjusted_ci_low: f64,
+    pub adjusted_ci_high: f64,
 }
 
 fn finite(x: f64) -> Option<f64> {
@@ -459,7 +499,28 @@ fn difference(e: &Estimate) -> DifferenceOut {
         adjusted_p_value: e.p_value,
         se: e.se,
         df: finite(e.df),
+        adjusted_ci_low: e.ci_low,
+        adjusted_ci_high: e.ci_high,
+        adjusted_confidence: f64::NAN,
     }
+}
+
+fn untestable_code(u: analysis::Untestable) -> &'static str {
+    match u {
+        analysis::Untestable::NoVariation => "no_variation",
+        analysis::Untestable::SequentialZeroControl => "sequential_zero_control",
+        analysis::Untestable::SequentialFewEvents => "sequential_few_events",
+    }
+}
+
+/// What a result row was computed from, kept for the second pass that recomputes intervals
+/// and power at the levels the row's family uses.
+struct Inputs {
+    control: ArmMoments,
+    treatment: ArmMoments,
+    group: Vec<ArmMoments>,
+    binary: bool,
+    mde: Option<f64>,
 }
 
 /// Builds the readout. Pure: the same table and spec always give the same readout.
@@ -508,14 +569,15 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
         groups[i].1.push(r);
     }
     let mut results = Vec::new();
+    let mut inputs = Vec::new();
     for (group, rows) in &groups {
         let segment = group.map(|(name, value)| SegmentRef {
             name: name.clone(),
             value: value.clone(),
         });
-        results.extend(metric_rows(spec, rows, segment));
+        metric_rows(spec, rows, segment, &mut results, &mut inputs);
     }
-    adjust_and_judge(spec, &mut results);
+    adjust_and_judge(spec, &mut results, &inputs);
     let guardrails_failed: Vec<GuardrailFailure> = results
         .iter()
         .filter(|r| r.segment.is_none() && r.role == Role::Guardrail && r.verdict == Verdict::Worse)
@@ -531,7 +593,9 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
         rows_without_unit: table.excluded_rows_without_unit,
     };
     let cautions = cautions(spec, srm.as_ref(), &excluded, &results, &guardrails_failed);
+    let headline = headline(spec, srm.as_ref(), &results, &guardrails_failed);
     Readout {
+        headline,
         experiment: spec.experiment.clone(),
         control: spec.control.clone(),
         alpha: spec.alpha,
@@ -543,6 +607,7 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
         void: srm.is_some_and(|s| s.mismatch),
         results,
         guardrails_failed,
+        schema_version: SCHEMA_VERSION,
         cuped: spec.cuped,
         sequential: spec.sequential,
         assumptions: assumptions(spec),
@@ -608,16 +673,30 @@ fn arm_summary(m: Option<&ArmMoments>) -> ArmSummary {
     }
 }
 
-/// Result rows of every metric and non-control arm for one group of arm rows.
-fn metric_rows(spec: &ReadoutSpec, rows: &[&ArmRow], segment: Option<SegmentRef>) -> Vec<ResultRow> {
-    let row = |arm: &str| rows.iter().copied().find(|r| r.arm == arm);
-    let options = Options {
-        alpha: spec.alpha,
+fn options(spec: &ReadoutSpec, alpha: f64, plan_alpha: f64) -> Options {
+    Options {
+        alpha,
+        plan_alpha,
         cuped: spec.cuped,
         sequential: spec.sequential,
         power: 0.8,
-    };
-    let mut results = Vec::new();
+    }
+}
+
+/// Result rows of every metric and non-control arm for one group of arm rows, with what each
+/// was computed from. Intervals and power are at the unadjusted level here.
+fn metric_rows(
+    spec: &ReadoutSpec,
+    rows: &[&ArmRow],
+    segment: Option<SegmentRef>,
+    results: &mut Vec<ResultRow>,
+    inputs: &mut Vec<Option<Inputs>>,
+) {
+    let row = |arm: &str| rows.iter().copied().find(|r| r.arm == arm);
+    let options = options(spec, spec.alpha, spec.alpha);
+    let exploratory = segment
+        .as_ref()
+        .is_some_and(|s| spec.exploratory_segments.contains(&s.name));
     for m in &spec.metrics {
         let group: Vec<ArmMoments> = spec
             .arms
@@ -631,12 +710,24 @@ fn metric_rows(spec: &ReadoutSpec, rows: &[&ArmRow], segment: Option<SegmentRef>
                 (Some(c), Some(t)) => Some(analysis::compare(c, t, &group, m.binary, m.mde, &options)),
                 _ => None,
             };
+            inputs.push(match (&control, &treatment) {
+                (Some(c), Some(t)) => Some(Inputs {
+                    control: *c,
+                    treatment: *t,
+                    group: group.clone(),
+                    binary: m.binary,
+                    mde: m.mde,
+                }),
+                _ => None,
+            });
             let diff = cmp.and_then(|c| c.difference);
-            let control_value = cmp
-                .and_then(|c| c.control_value)
-                .map(f64::abs)
-                .filter(|v| *v > 0.0);
-            let mde = cmp.and_then(|c| c.mde);
+            let relative = cmp.and_then(|c| c.relative).map(|r| RelativeOut {
+                estimate: r.estimate,
+                ci_low: r.ci_low,
+                ci_high: r.ci_high,
+                adjusted_ci_low: r.ci_low,
+                adjusted_ci_high: r.ci_high,
+            });
             results.push(ResultRow {
                 metric: m.name.clone(),
                 role: m.role,
@@ -645,14 +736,15 @@ fn metric_rows(spec: &ReadoutSpec, rows: &[&ArmRow], segment: Option<SegmentRef>
                 control: arm_summary(control.as_ref()),
                 treatment: arm_summary(treatment.as_ref()),
                 difference: diff.as_ref().map(difference),
-                relative: cmp.and_then(|c| c.relative).map(|r| RelativeOut {
-                    estimate: r.estimate,
-                    ci_low: r.ci_low,
-                    ci_high: r.ci_high,
-                }),
+                relative,
                 change: Change::NotEnoughData,
                 verdict: Verdict::NotEnoughData,
                 family: Family::of(segment.is_some(), m.role),
+                method: cmp
+                    .map(|c| c.method_code(spec.sequential))
+                    .unwrap_or_else(|| "none".into()),
+                not_testable: cmp.and_then(|c| c.untestable).map(untestable_code),
+                exploratory,
                 cuped: cmp
                     .and_then(|c| c.cuped)
                     .map(|(theta, variance_reduction)| CupedOut {
@@ -661,19 +753,74 @@ fn metric_rows(spec: &ReadoutSpec, rows: &[&ArmRow], segment: Option<SegmentRef>
                     }),
                 population_impact: None,
                 power: PowerOut {
-                    mde,
-                    mde_relative: mde.zip(control_value).map(|(m, c)| m / c),
+                    mde: None,
+                    planned_alpha: spec.alpha,
+                    low_power: false,
+                    mde_relative: None,
                     declared_mde: m.mde,
-                    power_at_declared_mde: cmp.and_then(|c| c.power_at_declared),
+                    power_at_declared_mde: None,
                 },
             });
         }
     }
-    results
 }
 
-/// Adjusts p-values within each family and sets `change` and `verdict` from them.
-fn adjust_and_judge(spec: &ReadoutSpec, results: &mut [ResultRow]) {
+/// Two-sided interval levels that agree with each row's adjusted test, for the rows `idx` of
+/// one family with raw p-values `p` (same order):
+/// - Holm: the row tested at step j (p sorted ascending, 0-based) of m gets level α/(m − j)
+///   while the step-down rejects; every row from the first non-rejected step k on gets
+///   α/(m − k). A rejected row's interval then excludes 0 and an accepted row's includes it
+///   (for intervals dual to the test). These step-down intervals agree with the decisions;
+///   simultaneous coverage is only guaranteed by the Bonferroni level α/m, which the first
+///   step uses.
+/// - Benjamini–Hochberg: with R rows rejected, every row gets level R·α/m (α/m when R = 0),
+///   the false-coverage-rate intervals of Benjamini & Yekutieli (2005), "False discovery
+///   rate-adjusted multiple confidence intervals for selected parameters", JASA 100(469),
+///   §3 (FCR ≤ α over the selected rows). Rejected rows have p ≤ R·α/m, the others p > R·α/m.
+fn interval_levels(family: Family, p: &[f64], alpha: f64) -> Vec<f64> {
+    let m = p.len();
+    let mut order: Vec<usize> = (0..m).collect();
+    order.sort_by(|&a, &b| p[a].total_cmp(&p[b]));
+    let mut out = vec![alpha; m];
+    match family {
+        Family::Primary => {
+            let mut stopped: Option<f64> = None;
+            for (j, &i) in order.iter().enumerate() {
+                let level = alpha / (m - j) as f64;
+                let level = match stopped {
+                    Some(l) => l,
+                    None if p[i] * (m - j) as f64 >= alpha => {
+                        stopped = Some(level);
+                        level
+                    }
+                    None => level,
+                };
+                out[i] = level;
+            }
+        }
+        Family::Secondary | Family::Segment => {
+            let rejected = order
+                .iter()
+                .enumerate()
+                .filter(|(j, i)| p[**i] * (m as f64) / ((*j + 1) as f64) < alpha)
+                .map(|(j, _)| j + 1)
+                .max()
+                .unwrap_or(0);
+            out.fill(alpha * rejected.max(1) as f64 / m as f64);
+        }
+        Family::Guardrail => {}
+    }
+    out
+}
+
+/// Adjusts p-values within each family, recomputes intervals and power at the levels the
+/// family's test uses, and sets `change` and `verdict`. A row is significant when its adjusted
+/// p-value is below α and its adjusted interval excludes 0; for tests dual to their interval
+/// these agree, for Fisher's test with Newcombe's interval the stricter of the two decides.
+fn adjust_and_judge(spec: &ReadoutSpec, results: &mut [ResultRow], inputs: &[Option<Inputs>]) {
+    let alpha = spec.alpha;
+    let mut ci_alpha = vec![alpha; results.len()];
+    let mut plan_alpha = vec![alpha; results.len()];
     for family in [Family::Primary, Family::Secondary, Family::Segment] {
         let idx: Vec<usize> = (0..results.len())
             .filter(|&i| results[i].family == family)
@@ -699,11 +846,52 @@ fn adjust_and_judge(spec: &ReadoutSpec, results: &mut [ResultRow]) {
         } else {
             super::multiple::benjamini_hochberg(&p)
         };
+        let levels = interval_levels(family, &p, alpha);
         for (k, &i) in idx.iter().enumerate() {
             if let Some(d) = results[i].difference.as_mut() {
                 d.adjusted_p_value = Some(adjusted[k]);
             }
+            ci_alpha[i] = levels[k];
         }
+        // Power is planned for the test as run: Bonferroni's α/m bounds Holm's first step
+        // (common practice for planning several primary metrics). Benjamini–Hochberg's level
+        // depends on how many rows have real effects; its families are planned at α.
+        if family == Family::Primary {
+            let m = (0..results.len())
+                .filter(|&i| results[i].family == family && results[i].difference.is_some())
+                .count()
+                .max(1);
+            for (i, r) in results.iter().enumerate() {
+                if r.family == family {
+                    plan_alpha[i] = alpha / m as f64;
+                }
+            }
+        }
+    }
+    for (i, r) in results.iter_mut().enumerate() {
+        let Some(input) = &inputs[i] else { continue };
+        let cmp = analysis::compare(
+            &input.control,
+            &input.treatment,
+            &input.group,
+            input.binary,
+            input.mde,
+            &options(spec, ci_alpha[i], plan_alpha[i]),
+        );
+        if let (Some(d), Some(adj)) = (r.difference.as_mut(), cmp.difference) {
+            d.adjusted_ci_low = adj.ci_low;
+            d.adjusted_ci_high = adj.ci_high;
+            d.adjusted_confidence = 1.0 - ci_alpha[i];
+        }
+        if let (Some(rel), Some(adj)) = (r.relative.as_mut(), cmp.relative) {
+            rel.adjusted_ci_low = adj.ci_low;
+            rel.adjusted_ci_high = adj.ci_high;
+        }
+        let control_value = cmp.control_value.map(f64::abs).filter(|v| *v > 0.0);
+        r.power.planned_alpha = plan_alpha[i];
+        r.power.mde = cmp.mde;
+        r.power.mde_relative = cmp.mde.zip(control_value).map(|(m, c)| m / c);
+        r.power.power_at_declared_mde = cmp.power_at_declared;
     }
     for r in results.iter_mut() {
         let higher_is_better = spec
@@ -713,15 +901,102 @@ fn adjust_and_judge(spec: &ReadoutSpec, results: &mut [ResultRow]) {
             .and_then(|m| m.higher_is_better);
         r.change = match &r.difference {
             None => Change::NotEnoughData,
-            Some(d) => match d.adjusted_p_value {
-                None => Change::NoDetectableChange,
-                Some(p) if p >= spec.alpha => Change::NoDetectableChange,
-                Some(_) if d.estimate > 0.0 => Change::Increase,
-                Some(_) => Change::Decrease,
-            },
+            Some(_) if r.not_testable.is_some() => Change::NotTestable,
+            Some(d) => {
+                let excludes_zero = d.adjusted_ci_low > 0.0 || d.adjusted_ci_high < 0.0;
+                match d.adjusted_p_value {
+                    None => Change::NoDetectableChange,
+                    Some(p) if p >= alpha || !excludes_zero => Change::NoDetectableChange,
+                    Some(_) if d.estimate > 0.0 => Change::Increase,
+                    Some(_) => Change::Decrease,
+                }
+            }
         };
         r.verdict = Verdict::of(r.change, higher_is_better);
+        r.power.low_power = r.change == Change::NoDetectableChange
+            && match (r.power.power_at_declared_mde, r.power.mde_relative) {
+                (Some(p), _) => p < 0.8,
+                (None, Some(m)) => m > LOW_POWER_MDE,
+                (None, None) => false,
+            };
     }
+}
+
+/// Without a declared MDE, a relative MDE above this makes "no detectable change" weak
+/// evidence (common practice: online experiments usually target changes of a few percent).
+pub const LOW_POWER_MDE: f64 = 0.05;
+
+/// A signed percentage with one decimal, e.g. `+5.1%`.
+fn signed_pct(x: f64) -> String {
+    format!("{:+.1}%", x * 100.0)
+}
+
+/// The decision first: `VOID`, `GUARDRAIL FAILED`, then the primary verdicts per arm.
+fn headline(
+    spec: &ReadoutSpec,
+    srm: Option<&SampleRatio>,
+    results: &[ResultRow],
+    guardrails: &[GuardrailFailure],
+) -> Vec<String> {
+    let mut out = Vec::new();
+    if let Some(s) = srm.filter(|s| s.mismatch) {
+        out.push(format!(
+            "VOID: sample-ratio mismatch (p = {:.1e}); assignment or logging is broken, so no result below can be used for a decision.",
+            s.p_value
+        ));
+        return out;
+    }
+    if !guardrails.is_empty() {
+        let failed: Vec<String> = guardrails
+            .iter()
+            .map(|g| {
+                let rel = results
+                    .iter()
+                    .find(|r| r.segment.is_none() && r.metric == g.metric && r.arm == g.arm)
+                    .and_then(|r| r.relative.as_ref())
+                    .map(|r| format!(" ({})", signed_pct(r.estimate)))
+                    .unwrap_or_default();
+                format!("{} worse in {}{rel}", g.metric, g.arm)
+            })
+            .collect();
+        out.push(format!("GUARDRAIL FAILED: {}.", failed.join("; ")));
+    }
+    let multi_arm = spec.arms.len() > 2;
+    for (arm, _) in spec.arms.iter().skip(1) {
+        let rows: Vec<&ResultRow> = results
+            .iter()
+            .filter(|r| r.segment.is_none() && r.role == Role::Primary && &r.arm == arm)
+            .collect();
+        if rows.is_empty() {
+            out.push("No primary metrics: the experiment declares none, so there is no decision rule; read the table.".into());
+            break;
+        }
+        let shown = 4;
+        let mut parts: Vec<String> = rows
+            .iter()
+            .take(shown)
+            .map(|r| {
+                let rel = r
+                    .relative
+                    .as_ref()
+                    .filter(|_| r.change.is_significant())
+                    .map(|x| format!(" ({})", signed_pct(x.estimate)))
+                    .unwrap_or_default();
+                let low = if r.power.low_power { ", low power" } else { "" };
+                format!("{} {}{rel}{low}", r.metric, r.verdict)
+            })
+            .collect();
+        if rows.len() > shown {
+            parts.push(format!("{} more in the table", rows.len() - shown));
+        }
+        let who = if multi_arm {
+            format!("{arm} vs {}", spec.control)
+        } else {
+            "Primary".to_string()
+        };
+        out.push(format!("{who}: {}.", parts.join("; ")));
+    }
+    out
 }
 
 fn assumptions(spec: &ReadoutSpec) -> Vec<String> {
@@ -733,16 +1008,17 @@ fn assumptions(spec: &ReadoutSpec) -> Vec<String> {
             spec.end
         ),
         format!(
-            "Differences are treatment minus control with {conf:.0}% intervals: Welch's t for means, two proportions (Wald interval, pooled z test) for 0/1 metrics, the delta method for relative differences and ratio metrics. All rely on enough units per arm for averages to be approximately normal."
+            "Differences are treatment minus control: Welch's t for means, two proportions (Wald interval, pooled z test) for 0/1 metrics, the delta method for relative differences and ratio metrics. All rely on enough units per arm for averages to be approximately normal; 0/1 metrics with fewer than {} events or non-events in an arm use Fisher's exact test and Newcombe's hybrid score interval instead.",
+            super::exact::MIN_EVENTS_FOR_NORMAL
         ),
-        "Multiple testing: primary metrics are one family adjusted with Holm (family-wise error); secondary metrics and segment rows are families adjusted with Benjamini-Hochberg (false discovery rate); guardrails are not adjusted, so they fail more readily. Verdicts use the adjusted p-values.".into(),
-        "MDE is the smallest effect this comparison detects with 80% power at the current sample size.".into(),
+        format!("Multiple testing: primary metrics are one family adjusted with Holm (family-wise error); secondary metrics and segment rows are families adjusted with Benjamini-Hochberg (false discovery rate); guardrails are not adjusted, so they fail more readily. Verdicts use the adjusted p-values, and the intervals shown are at the level that matches them (Holm step-down levels; Benjamini-Yekutieli false-coverage intervals); the raw {conf:.0}% intervals are in --format json."),
+        "MDE is the smallest effect the test behind the verdict detects with 80% power at the current sample size: at alpha / m for m primary rows (Bonferroni, which bounds Holm), at alpha for the other families.".into(),
     ];
     if spec.cuped {
-        out.push("CUPED: where a covariate window is set, each metric is adjusted with its own pre-exposure value (theta pooled over arms); this narrows intervals without biasing the difference, because exposure cannot affect the past.".into());
+        out.push("CUPED: where a covariate window is set, each metric is adjusted with its own pre-exposure value (theta is the within-arm slope, pooled over arms); this narrows intervals without biasing the difference, because exposure cannot affect the past.".into());
     }
     if spec.sequential {
-        out.push("Sequential mode: p-values and intervals are always valid (mixture SPRT with a normal mixing distribution whose scale is the declared MDE, or 5% of the control value): you may look every day and stop when a result is significant. They are wider than fixed-sample intervals; relative intervals treat the control value as known.".into());
+        out.push("Sequential mode: p-values and intervals are always valid (mixture SPRT with a normal mixing distribution whose scale is the declared MDE, or 5% of the control value): you may look every day and stop when a result is significant. They are wider than fixed-sample intervals; relative intervals treat the control value as known. The MDE is that of the always-valid test at the current sample size.".into());
     } else {
         out.push("p-values are for one look at the data at the planned end; looking repeatedly and stopping on a good p-value inflates false positives (use --sequential for that).".into());
     }
@@ -821,32 +1097,310 @@ fn cautions(
         .count();
     if thin > 0 {
         out.push(format!(
-            "{thin} results have too few units (fewer than two per arm with a value) to compare."
+            "{thin} {} too few units (fewer than two per arm with a value) to compare.",
+            if thin == 1 { "result has" } else { "results have" }
         ));
     }
     for r in results
         .iter()
-        .filter(|r| r.segment.is_none() && r.role == Role::Primary && r.change == Change::NoDetectableChange)
+        .filter(|r| r.segment.is_none() && r.role != Role::Secondary && r.power.low_power)
     {
-        let weak = match (r.power.power_at_declared_mde, r.power.mde_relative) {
-            (Some(p), _) => {
-                (p < 0.8).then(|| format!("power to detect the declared MDE is only {:.0}%", p * 100.0))
-            }
-            (None, Some(m)) if m > 0.05 => Some(format!(
-                "it could only detect changes of {:.1}% or more",
-                m * 100.0
-            )),
-            _ => None,
+        let why = match (r.power.power_at_declared_mde, r.power.mde_relative) {
+            (Some(p), _) => format!("power to detect the declared MDE is only {:.0}%", p * 100.0),
+            (_, Some(m)) => format!("it could only detect changes of {:.1}% or more", m * 100.0),
+            _ => continue,
         };
-        if let Some(why) = weak {
+        if r.role == Role::Guardrail {
+            out.push(format!(
+                "Underpowered guardrail: \"no detectable change\" for {} (arm {}) does not show it is safe, because {why}.",
+                r.metric, r.arm
+            ));
+        } else {
             out.push(format!(
                 "Low power: \"no detectable change\" for {} (arm {}) says little, because {why}.",
                 r.metric, r.arm
             ));
         }
     }
+    let untestable = |code: &str| {
+        results
+            .iter()
+            .filter(|r| r.not_testable == Some(code))
+            .map(|r| r.metric.as_str())
+            .collect::<std::collections::BTreeSet<_>>()
+            .into_iter()
+            .collect::<Vec<_>>()
+    };
+    let names = untestable("no_variation");
+    if !names.is_empty() {
+        out.push(format!(
+            "Not testable: every unit has the same value within each arm, and the arms differ ({}). With no variation there is nothing to judge chance by; check that the metric measures what you expect.",
+            names.join(", ")
+        ));
+    }
+    let names = untestable("sequential_zero_control");
+    if !names.is_empty() {
+        out.push(format!(
+            "Not testable in sequential mode: the control value is zero ({}), so the always-valid test has no mixing scale fixed in advance.",
+            names.join(", ")
+        ));
+    }
+    let names = untestable("sequential_few_events");
+    if !names.is_empty() {
+        out.push(format!(
+            "Not testable in sequential mode: fewer than {} events or non-events in an arm ({}); the always-valid test relies on the normal approximation. Wait for more data.",
+            super::exact::MIN_EVENTS_FOR_NORMAL,
+            names.join(", ")
+        ));
+    }
+    let exact_rows = results.iter().filter(|r| r.method == "fisher_newcombe").count();
+    if exact_rows > 0 && !spec.sequential {
+        out.push(format!(
+            "{exact_rows} {} of 0/1 metrics with fewer than {} events or non-events in an arm {} Fisher's exact test and Newcombe's score interval instead of the normal approximation; such rows count as a change only when both agree.",
+            if exact_rows == 1 { "row" } else { "rows" },
+            super::exact::MIN_EVENTS_FOR_NORMAL,
+            if exact_rows == 1 { "uses" } else { "use" },
+        ));
+    }
+    let negative: Vec<&str> = results
+        .iter()
+        .filter(|r| r.segment.is_none() && r.control.mean.is_some_and(|m| m < 0.0))
+        .map(|r| r.metric.as_str())
+        .collect();
+    if !negative.is_empty() {
+        out.push(format!(
+            "Negative control value ({}): relative changes are the difference divided by the size of the control value, so their sign is that of the difference.",
+            negative.join(", ")
+        ));
+    }
     if results.iter().any(|r| r.change == Change::NoDetectableChange) {
         out.push("\"No detectable change\" is not evidence of no effect: the interval shows which effects the data cannot rule out.".into());
     }
     out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn spec(metrics: Vec<MetricSpec>) -> ReadoutSpec {
+        ReadoutSpec {
+            experiment: "e".into(),
+            control: "control".into(),
+            arms: vec![("control".into(), 0.5), ("treatment".into(), 0.5)],
+            metrics,
+            alpha: 0.05,
+            start: "2026-01-01".into(),
+            end: "2026-01-29".into(),
+            exploratory_segments: vec![],
+            cuped: true,
+            sequential: false,
+        }
+    }
+
+    fn metric(name: &str, role: Role, binary: bool) -> MetricSpec {
+        MetricSpec {
+            name: name.into(),
+            role,
+            kind: MetricShape::Mean { column: name.into() },
+            higher_is_better: Some(true),
+            binary,
+            mde: None,
+            covariate: None,
+        }
+    }
+
+    /// (n, mean, var) of one arm.
+    type Arm = (u64, f64, f64);
+    /// A metric column: name, control, treatment.
+    type Column<'a> = (&'a str, Arm, Arm);
+
+    /// Arm rows with, per metric, (n, mean, var) for control and treatment.
+    fn table(cols: &[Column]) -> StatsTable {
+        let arm = |name: &str, pick: &dyn Fn(&Column) -> Arm| ArmRow {
+            arm: name.into(),
+            segment: None,
+            units: cols.first().map(|c| pick(c).0).unwrap_or(0),
+            columns: cols
+                .iter()
+                .map(|c| {
+                    let (n, mean, var) = pick(c);
+                    (c.0.to_string(), Moments { n, mean, var })
+                })
+                .collect(),
+            covariances: BTreeMap::new(),
+        };
+        StatsTable {
+            rows: vec![arm("control", &|c| c.1), arm("treatment", &|c| c.2)],
+            ..Default::default()
+        }
+    }
+
+    fn binary(x: u64, n: u64) -> (u64, f64, f64) {
+        let p = x as f64 / n as f64;
+        (n, p, p * (1.0 - p) * n as f64 / (n as f64 - 1.0))
+    }
+
+    /// The shown interval agrees with the verdict: a row whose raw 95% interval excludes 0
+    /// but whose Holm-adjusted p-value is above α shows an adjusted interval containing 0.
+    #[test]
+    fn adjusted_interval_agrees_with_the_holm_verdict() {
+        // Two primary metrics, p ≈ 0.03 and 0.04: raw intervals exclude 0, Holm rejects none
+        // (adjusted p 0.06 and 0.06).
+        let s = spec(vec![
+            metric("a", Role::Primary, false),
+            metric("b", Role::Primary, false),
+        ]);
+        let t = table(&[
+            ("a", (1000, 0.0, 1.0), (1000, 0.0970, 1.0)),
+            ("b", (1000, 0.0, 1.0), (1000, 0.0920, 1.0)),
+        ]);
+        let r = build(&s, &t);
+        for row in &r.results {
+            let d = row.difference.as_ref().unwrap();
+            assert!(d.ci_low > 0.0, "raw interval excludes 0: {d:?}");
+            assert!(d.p_value.unwrap() < 0.05 && d.adjusted_p_value.unwrap() >= 0.05);
+            assert!(d.adjusted_ci_low < 0.0, "adjusted interval contains 0: {d:?}");
+            assert_eq!(row.verdict, Verdict::NoDetectableChange);
+        }
+    }
+
+    /// Holm step-down and Benjamini–Yekutieli levels on the 15 p-values of Benjamini &
+    /// Hochberg (1995), §4 (shared REFERENCES.md): a row's p-value is below its interval level
+    /// exactly when its adjusted p-value is below α; Holm rejects 3 rows, BH 4.
+    #[test]
+    fn interval_levels_match_the_adjusted_decisions() {
+        let p = [
+            0.0001, 0.0004, 0.0019, 0.0095, 0.0201, 0.0278, 0.0298, 0.0344, 0.0459, 0.3240, 0.4262, 0.5719,
+            0.6528, 0.7590, 1.0,
+        ];
+        for (family, adjusted, rejections) in [
+            (Family::Primary, crate::stats::multiple::holm(&p), 3),
+            (
+                Family::Secondary,
+                crate::stats::multiple::benjamini_hochberg(&p),
+                4,
+            ),
+        ] {
+            let levels = interval_levels(family, &p, 0.05);
+            let mut n = 0;
+            for k in 0..p.len() {
+                assert_eq!(p[k] < levels[k], adjusted[k] < 0.05, "{family:?} row {k}");
+                n += usize::from(adjusted[k] < 0.05);
+            }
+            assert_eq!(n, rejections, "{family:?}");
+        }
+    }
+
+    /// 3/3 against 0/3 on a 0/1 metric was "increase (better)" with the pooled z test
+    /// (p = 0.014); Fisher's exact test gives p = 0.1: no detectable change.
+    #[test]
+    fn three_of_three_is_not_better() {
+        let s = spec(vec![metric("bought", Role::Primary, true)]);
+        let t = table(&[("bought", binary(0, 3), binary(3, 3))]);
+        let r = build(&s, &t);
+        let row = &r.results[0];
+        assert_eq!(row.method, "fisher_newcombe");
+        assert!((row.difference.as_ref().unwrap().p_value.unwrap() - 0.1).abs() < 1e-12);
+        assert_eq!(row.verdict, Verdict::NoDetectableChange);
+        assert!(row.difference.as_ref().unwrap().ci_high > row.difference.as_ref().unwrap().ci_low);
+    }
+
+    /// Both arms constant but different: there is a difference and no variation to test it
+    /// against; "no detectable change" would hide it.
+    #[test]
+    fn constant_but_different_arms_are_not_testable() {
+        let s = spec(vec![metric("price", Role::Secondary, false)]);
+        let t = table(&[("price", (50, 5.0, 0.0), (50, 6.0, 0.0))]);
+        let r = build(&s, &t);
+        assert_eq!(r.results[0].verdict, Verdict::NotTestable);
+        assert_eq!(r.results[0].not_testable, Some("no_variation"));
+        assert!(r.cautions.iter().any(|c| c.starts_with("Not testable")));
+        // Equal constant arms are no change, not "not testable".
+        let t = table(&[("price", (50, 5.0, 0.0), (50, 5.0, 0.0))]);
+        assert_eq!(build(&s, &t).results[0].verdict, Verdict::NoDetectableChange);
+    }
+
+    /// A negative control mean no longer flips the relative effect's sign.
+    #[test]
+    fn relative_change_keeps_the_sign_of_the_difference() {
+        let s = spec(vec![metric("profit", Role::Secondary, false)]);
+        let t = table(&[("profit", (2000, -10.0, 4.0), (2000, -5.0, 4.0))]);
+        let r = build(&s, &t);
+        let row = &r.results[0];
+        assert!(row.difference.as_ref().unwrap().estimate > 0.0);
+        let rel = row.relative.as_ref().unwrap();
+        assert!((rel.estimate - 0.5).abs() < 1e-12, "{rel:?}");
+        assert_eq!(row.verdict, Verdict::Better);
+        assert!(r.cautions.iter().any(|c| c.starts_with("Negative control value")));
+    }
+
+    /// Sequential mode with a zero control value has no mixing scale fixed in advance, and
+    /// with constant arms no variance: neither falls back to the fixed-sample test.
+    #[test]
+    fn sequential_does_not_fall_back_silently() {
+        let mut s = spec(vec![metric("m", Role::Primary, false)]);
+        s.sequential = true;
+        let t = table(&[("m", (500, 0.0, 1.0), (500, 0.5, 1.0))]);
+        let r = build(&s, &t);
+        assert_eq!(r.results[0].not_testable, Some("sequential_zero_control"));
+        assert_eq!(r.results[0].difference.as_ref().unwrap().p_value, None);
+        assert_eq!(r.results[0].verdict, Verdict::NotTestable);
+        let t = table(&[("m", (500, 1.0, 0.0), (500, 2.0, 0.0))]);
+        assert_eq!(build(&s, &t).results[0].not_testable, Some("no_variation"));
+    }
+
+    /// An underpowered guardrail is flagged instead of reading as safe; power is planned at
+    /// α/m for m primary rows.
+    #[test]
+    fn guardrail_power_is_checked_and_primary_power_uses_the_family_level() {
+        let s = spec(vec![
+            metric("a", Role::Primary, false),
+            metric("b", Role::Primary, false),
+            metric("refunds", Role::Guardrail, true),
+        ]);
+        let t = table(&[
+            ("a", (400, 1.0, 1.0), (400, 1.0, 1.0)),
+            ("b", (400, 1.0, 1.0), (400, 1.0, 1.0)),
+            ("refunds", binary(20, 400), binary(21, 400)),
+        ]);
+        let r = build(&s, &t);
+        let g = r.results.iter().find(|x| x.metric == "refunds").unwrap();
+        assert!(g.power.low_power);
+        assert!(r.cautions.iter().any(|c| c.starts_with("Underpowered guardrail")));
+        let a = r.results.iter().find(|x| x.metric == "a").unwrap();
+        assert!((a.power.planned_alpha - 0.025).abs() < 1e-15);
+        let se = a.difference.as_ref().unwrap().se;
+        let want = crate::stats::power::mde(se, 0.025, 0.8);
+        assert!((a.power.mde.unwrap() - want).abs() < 1e-12);
+    }
+
+    #[test]
+    fn headline_leads_with_void_and_failed_guardrails() {
+        let s = spec(vec![metric("a", Role::Primary, false)]);
+        let mut t = table(&[("a", (1000, 1.0, 1.0), (1300, 1.0, 1.0))]);
+        t.rows[0].units = 1000;
+        t.rows[1].units = 1300;
+        let r = build(&s, &t);
+        assert!(r.void);
+        assert!(r.headline[0].starts_with("VOID"), "{:?}", r.headline);
+        let mut g = metric("refunds", Role::Guardrail, false);
+        g.higher_is_better = Some(false);
+        let s = spec(vec![metric("a", Role::Primary, false), g]);
+        let t = table(&[
+            ("a", (1000, 1.0, 1.0), (1000, 1.0, 1.0)),
+            ("refunds", (1000, 1.0, 1.0), (1000, 1.3, 1.0)),
+        ]);
+        let r = build(&s, &t);
+        assert!(
+            r.headline[0].starts_with("GUARDRAIL FAILED: refunds worse in treatment"),
+            "{:?}",
+            r.headline
+        );
+        assert!(
+            r.headline[1].starts_with("Primary: a no detectable change"),
+            "{:?}",
+            r.headline
+        );
+    }
 }
