@@ -123,11 +123,21 @@ impl Context {
                     let found = crate::timing::stage("probe local data", || {
                         crate::probe::probe(&ws, &dialect, binder, tables)
                     });
-                    if !found.is_empty() {
-                        let mut diags = warnings;
-                        diags.extend(found);
-                        return Err(Error::catalog(sources, diags));
+                    let mut warnings = warnings;
+                    if found.iter().any(Diagnostic::is_error) {
+                        warnings.extend(found);
+                        return Err(Error::catalog(sources, warnings));
                     }
+                    warnings.extend(found);
+                    return Ok(Context {
+                        workspace: *ws,
+                        sources,
+                        warnings,
+                        dialects_dir: options.dialects_dir,
+                        dialects: RefCell::new(BTreeMap::new()),
+                        choice: options.engine,
+                        engine: RefCell::new(engine),
+                    });
                 }
                 Ok(Context {
                     workspace: *ws,
@@ -405,6 +415,27 @@ impl Context {
     pub fn report(&self, plan: &ReportPlan) -> Result<Vec<crate::report::ReportRow>> {
         let sql = compile::compile_report(plan, &*self.engine_dialect()?)?;
         crate::report::assemble(plan, &self.query(&sql)?)
+    }
+
+    /// The first and last exposure time in exposure log `log` (any experiment), on the local
+    /// engine; `None` on other engines or for an empty log.
+    pub fn exposure_span(&self, log: ExposureLogId) -> Result<Option<(Timestamp, Timestamp)>> {
+        if !matches!(self.choice, EngineChoice::Local) {
+            return Ok(None);
+        }
+        let dialect = self.engine_dialect()?;
+        let l = &self.catalog().exposure_logs[log];
+        let time = format!("t.{}", dialect.ident(&l.time));
+        let sql = format!(
+            "SELECT CAST(floor(epoch(min({time}))) AS DOUBLE) AS first, CAST(floor(epoch(max({time}))) AS DOUBLE) AS last FROM {} AS t",
+            dialect.source(&l.source)
+        );
+        let rows = self.query(&sql)?;
+        let get = |k: &str| match rows.first().and_then(|r| r.get(k)) {
+            Some(execute::Cell::Number(x)) if x.is_finite() => Some(Timestamp(*x as i64)),
+            _ => None,
+        };
+        Ok(get("first").zip(get("last")))
     }
 
     /// The per-unit mean and sd of `metric` over units of exposure log `log` first exposed in

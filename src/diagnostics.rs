@@ -45,6 +45,13 @@ impl Diagnostic {
         }
     }
 
+    pub fn warning(code: &'static str, message: impl Into<String>) -> Self {
+        Diagnostic {
+            severity: Severity::Warning,
+            ..Diagnostic::error(code, message)
+        }
+    }
+
     pub fn at(mut self, span: Option<Span>) -> Self {
         self.span = span;
         self

@@ -11,8 +11,11 @@
 //!
 //! Invariants: probes render fragments exactly as the plan does (bare names qualified with the
 //! same aliases, re-emitted by the same dialect), so a probe binds iff that part of the real
-//! statement binds; probes never scan a table (one `LIMIT 1` existence check for a column
-//! whose type could not be inferred is the exception).
+//! statement binds; probes never scan a table, with two exceptions: one `LIMIT 1` existence
+//! check for a column whose type could not be inferred, and the arm check, which reads the
+//! distinct arms each experiment logged (one filtered `DISTINCT` over the exposure log) and
+//! compares them with `split` — a typo there would otherwise pass `check` and turn up in
+//! `analyze` as a sample-ratio mismatch.
 
 use crate::diagnostics::Diagnostic;
 use crate::diagnostics::did_you_mean;
@@ -30,7 +33,14 @@ pub trait Binder {
     fn bind_columns(&self, sql: &str) -> Result<Vec<(String, String)>, String>;
     /// Whether `sql` returns at least one row (for a hint; `None` when that cannot be told).
     fn has_rows(&self, sql: &str) -> Option<bool>;
+    /// The values of the one text column `sql` returns (`None` when that cannot be told).
+    fn text_values(&self, _sql: &str) -> Option<Vec<String>> {
+        None
+    }
 }
+
+/// Most distinct arm values read per experiment by the arm check.
+const MAX_ARMS_READ: usize = 100;
 
 /// Broad classes of engine types, for the checks that only care about kinds.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -125,6 +135,9 @@ pub fn probe(ws: &Workspace, dialect: &Dialect, binder: &dyn Binder, tables: Vec
     p.segments();
     p.unit_ids();
     if p.diags.is_empty() {
+        crate::timing::stage("probe arms", || p.arms());
+    }
+    if !p.diags.iter().any(Diagnostic::is_error) {
         crate::timing::stage("probe readouts", || p.experiments());
     }
     p.diags
@@ -510,6 +523,120 @@ impl Prober<'_> {
                 }
             }
             self.diags.extend(found);
+        }
+    }
+
+    /// The arms each experiment logged in the local data against its `split`: a split arm
+    /// never logged while a logged arm is not in the split is a typo (E025); a logged arm
+    /// outside the split, a split arm never logged, or no exposures of the experiment's key at
+    /// all are warnings (W002–W004), because the data may simply not cover them yet.
+    fn arms(&mut self) {
+        let ws = self.ws;
+        for (e, item) in ws.raw.experiments.iter().enumerate() {
+            let exp = &ws.catalog.experiments[e];
+            let log = &ws.catalog.exposure_logs[exp.exposures];
+            let source = self.dialect.source(&log.source);
+            let col = |c: &str| self.column("t", c);
+            let distinct = |what: &str, filter: String| {
+                format!(
+                    "SELECT DISTINCT CAST({what} AS VARCHAR) AS v FROM {source} AS t WHERE {filter} ORDER BY 1 LIMIT {}",
+                    MAX_ARMS_READ + 1
+                )
+            };
+            let key = self.dialect.literal(&exp.key);
+            let filter = format!(
+                "CAST({} AS VARCHAR) = {key} AND {} IS NOT NULL",
+                col(&log.experiment),
+                col(&log.arm)
+            );
+            let Some(logged) = self.binder.text_values(&distinct(&col(&log.arm), filter)) else {
+                continue;
+            };
+            if logged.len() > MAX_ARMS_READ {
+                continue; // an id-like column, not arms; the readout reports it
+            }
+            if logged.is_empty() {
+                let keys = self
+                    .binder
+                    .text_values(&distinct(&col(&log.experiment), "TRUE".into()))
+                    .unwrap_or_default();
+                let hint = did_you_mean(&exp.key, keys.iter().map(String::as_str)).unwrap_or_else(|| {
+                    "the readout will have no units until exposures of this key are logged".into()
+                });
+                self.diags.push(
+                    Diagnostic::warning(
+                        "W004",
+                        format!(
+                            "experiment `{}`: exposure log `{}` has no exposures with `{}` = `{}` in the local data",
+                            exp.name, log.name, log.experiment, exp.key
+                        ),
+                    )
+                    .at(Some(at(item, "key")))
+                    .hint(hint),
+                );
+                continue;
+            }
+            let planned: Vec<&str> = exp.arms.iter().map(|a| a.name.as_str()).collect();
+            let stray: Vec<&str> = logged
+                .iter()
+                .map(String::as_str)
+                .filter(|a| !planned.contains(a))
+                .collect();
+            let absent: Vec<&str> = planned
+                .iter()
+                .copied()
+                .filter(|a| !logged.iter().any(|l| l == a))
+                .collect();
+            let split_at = Some(at(item, "split"));
+            for arm in &absent {
+                if stray.is_empty() {
+                    self.diags.push(
+                        Diagnostic::warning(
+                            "W003",
+                            format!(
+                                "experiment `{}`: arm `{arm}` of `split` has no exposures in the local data",
+                                exp.name
+                            ),
+                        )
+                        .at(split_at.clone())
+                        .hint("the readout will report a sample-ratio mismatch until the arm is logged"),
+                    );
+                } else {
+                    let hint = did_you_mean(arm, stray.iter().copied())
+                        .unwrap_or_else(|| format!("arms logged for this experiment: {}", logged.join(", ")));
+                    self.diags.push(
+                        Diagnostic::error(
+                            "E025",
+                            format!(
+                                "experiment `{}`: arm `{arm}` of `split` is never logged, while the exposure log has arm{} {} that `split` does not name",
+                                exp.name,
+                                if stray.len() == 1 { "" } else { "s" },
+                                stray.iter().map(|s| format!("`{s}`")).collect::<Vec<_>>().join(", ")
+                            ),
+                        )
+                        .at(split_at.clone())
+                        .hint(format!(
+                            "{hint} `split` names the arms exactly as `{}` logs them; otherwise analyze excludes those units and calls the rest a sample-ratio mismatch",
+                            log.arm
+                        )),
+                    );
+                }
+            }
+            if absent.is_empty() {
+                for arm in &stray {
+                    self.diags.push(
+                        Diagnostic::warning(
+                            "W002",
+                            format!(
+                                "experiment `{}`: the exposure log has arm `{arm}`, which `split` does not name",
+                                exp.name
+                            ),
+                        )
+                        .at(split_at.clone())
+                        .hint("its units are excluded from the readout and counted under `unknown_arm`"),
+                    );
+                }
+            }
         }
     }
 

@@ -107,7 +107,7 @@ fn check_ok_prints_one_line_summary() {
     let ws = workspace(&[("ok.yaml", &body)]);
     let out = plumb(ws.path(), &["check"]);
     assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
-    insta::assert_snapshot!(text(&out.stdout), @"ok: 2 files, 2 units, 2 event tables, 1 exposure logs, 0 segments, 3 metrics, 1 experiments (dialect duckdb, 7 lint warnings)\n");
+    insta::assert_snapshot!(text(&out.stdout), @"ok: 2 files, 2 units, 2 event tables, 1 exposure logs, 0 segments, 3 metrics, 1 experiments (dialect duckdb, 7 warnings)\n");
 }
 
 #[test]
@@ -203,7 +203,7 @@ fn lint_warnings_are_reported_configurable_and_deniable() {
         stderr.contains("no experiment uses metric `deliveries`"),
         "{stderr}"
     );
-    assert!(text(&out.stdout).contains("lint warnings"));
+    assert!(text(&out.stdout).contains(" warnings)"));
     // --deny warnings fails the check for CI.
     assert_eq!(
         plumb(ws.path(), &["check", "--deny", "warnings"]).status.code(),

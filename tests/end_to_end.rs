@@ -302,6 +302,46 @@ fn cuped_sequential_and_power_on_the_demo() {
     );
     let want = plumb::stats::power::total_units(0.05 * mean, sd, 0.05, 0.8, 0.5);
     assert!((power["total_units"].as_f64().unwrap() - want).abs() < 1e-6 * want);
+
+    // The history window is bounded by the days the exposure log covers (21 here): asking for
+    // 400 days must not divide the units by 400. Before: 330 days where 21 said 17.
+    let per_day = |h: &str| {
+        let doc = json(&[
+            "power",
+            "orders",
+            "--mde",
+            "5%",
+            "--history-days",
+            h,
+            "--format",
+            "json",
+        ]);
+        (
+            doc["units_per_day"].as_f64().unwrap(),
+            doc["days"].as_f64().unwrap(),
+            doc,
+        )
+    };
+    let (u21, d21, _) = per_day("21");
+    let (u400, d400, long) = per_day("400");
+    assert!((u400 / u21 - 1.0).abs() < 0.1, "{u400} vs {u21} units per day");
+    assert!((d400 / d21 - 1.0).abs() < 0.1, "{d400} vs {d21} days");
+    assert_eq!(long["history"]["bounded_by_exposure_log"], true);
+    assert!((long["history"]["days"].as_f64().unwrap() - 21.0).abs() < 1e-9);
+    for bad in [
+        &["--units-per-day", "0"][..],
+        &["--days=-5"],
+        &["--units-per-day=-1"],
+    ] {
+        let mut args = vec!["power", "orders", "--mde", "5%"];
+        args.extend_from_slice(bad);
+        let out = plumb_in(dir.path(), &args);
+        assert_eq!(out.status.code(), Some(2), "{args:?}");
+        assert!(
+            String::from_utf8_lossy(&out.stderr).contains("must be a positive"),
+            "{args:?}"
+        );
+    }
 }
 
 fn csv_of(rows: &[plumb::execute::NamedRow]) -> String {

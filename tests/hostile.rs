@@ -391,6 +391,11 @@ fn cases() -> Vec<Case> {
         case(
             "arm labels 007",
             vec![
+                // Both experiments read the edited log: rename the arm in both.
+                replace(
+                    "control: control\n    split: {control: 50",
+                    "control: \"007\"\n    split: {\"007\": 50",
+                ),
                 replace(
                     "control: control\n    split: {control: 50",
                     "control: \"007\"\n    split: {\"007\": 50",
@@ -404,6 +409,10 @@ fn cases() -> Vec<Case> {
         case(
             "arm labels stored as numbers",
             vec![
+                replace(
+                    "control: control\n    split: {control: 50, treatment: 50}",
+                    "control: \"1.0\"\n    split: {\"1.0\": 50, \"2.0\": 50}",
+                ),
                 replace(
                     "control: control\n    split: {control: 50, treatment: 50}",
                     "control: \"1.0\"\n    split: {\"1.0\": 50, \"2.0\": 50}",
@@ -531,6 +540,40 @@ fn cases() -> Vec<Case> {
             "check",
             1,
             "plumb.yaml:6:13",
+        ),
+        case(
+            "typo in a split arm",
+            vec![replace(
+                "split: {control: 50, treatment: 50}",
+                "split: {control: 50, treatmnet: 50}",
+            )],
+            "check",
+            1,
+            "error[E025]: experiment `one_page_checkout`: arm `treatmnet` of `split` is never logged, while the exposure log has arm `treatment`",
+        ),
+        case(
+            "typo in a split arm gets a did-you-mean",
+            vec![replace(
+                "split: {control: 50, treatment: 50}",
+                "split: {control: 50, treatmnet: 50}",
+            )],
+            "check",
+            1,
+            "did you mean `treatment`?",
+        ),
+        case(
+            "experiment key never logged",
+            vec![replace("key: one-page-checkout", "key: one-page-chekout")],
+            "check",
+            0,
+            "1 warning",
+        ),
+        case(
+            "experiment key never logged is denied in CI",
+            vec![replace("key: one-page-checkout", "key: one-page-chekout")],
+            "check --deny warnings",
+            1,
+            "W004",
         ),
         // Reading what it should not.
         case(

@@ -9,7 +9,7 @@ use crate::error::Result;
 pub struct CheckArgs {
     #[arg(long, value_enum, default_value = "table")]
     format: Format,
-    /// `--deny warnings`: lint warnings fail the check (exit code 1), for CI.
+    /// `--deny warnings`: warnings (lint and local-data) fail the check (exit code 1), for CI.
     #[arg(long, value_parser = ["warnings"], value_name = "warnings")]
     deny: Option<String>,
 }
@@ -50,7 +50,7 @@ pub fn run(global: &Global, args: CheckArgs) -> Result<Outcome> {
         parts.push(Part::Stderr(diagnostics::render_plain(ctx.sources(), warnings)));
         if deny_warnings {
             parts.push(Part::Stderr(format!(
-                "plumb: {} lint warnings (denied by --deny warnings)\n",
+                "plumb: {} warnings (denied by --deny warnings)\n",
                 warnings.len()
             )));
             return Ok(Outcome {
@@ -63,8 +63,8 @@ pub fn run(global: &Global, args: CheckArgs) -> Result<Outcome> {
     let c = ctx.catalog();
     let counted = match warnings.len() {
         0 => String::new(),
-        1 => ", 1 lint warning".into(),
-        n => format!(", {n} lint warnings"),
+        1 => ", 1 warning".into(),
+        n => format!(", {n} warnings"),
     };
     parts.push(Part::Stdout(format!(
         "ok: {} files, {} units, {} event tables, {} exposure logs, {} segments, {} metrics, {} experiments (dialect {}{counted})\n",

@@ -84,6 +84,16 @@ impl Settings {
         if a.history_days < 1 {
             return Err(Error::usage("--history-days must be at least 1"));
         }
+        if let Some(d) = a.days.filter(|d| !(d.is_finite() && *d > 0.0)) {
+            return Err(Error::usage(format!(
+                "--days must be a positive number of days, got {d}"
+            )));
+        }
+        if let Some(u) = a.units_per_day.filter(|u| !(u.is_finite() && *u > 0.0)) {
+            return Err(Error::usage(format!(
+                "--units-per-day must be a positive number, got {u}"
+            )));
+        }
         Ok(Settings {
             metric: a.metric,
             mde,
@@ -128,7 +138,30 @@ pub fn run(global: &Global, s: Settings) -> Result<Outcome> {
             .max()
             .ok_or_else(|| Error::usage("no experiment uses this exposure log; pass --until DATE"))?,
     };
-    let start = end.plus(-s.history_days * 86_400);
+    // The window asked for, bounded by the days the exposure log covers: units per day are
+    // counted over days that could have had exposures, not over days before logging began.
+    let asked = end.plus(-s.history_days * 86_400);
+    let span = ctx.exposure_span(log)?;
+    let (start, end, bounded) = match span {
+        Some((first, last)) => {
+            let first_day = Timestamp(first.0.div_euclid(86_400) * 86_400);
+            let after_last_day = Timestamp((last.0.div_euclid(86_400) + 1) * 86_400);
+            let (lo, hi) = (asked.max(first_day), end.min(after_last_day));
+            if lo >= hi {
+                return Err(Error::usage(format!(
+                    "exposure log `{}` has no exposures between {} and {}; it covers {} to {}. Pass --until inside that range",
+                    catalog.exposure_logs[log].name,
+                    asked.to_iso(),
+                    end.to_iso(),
+                    first_day.to_iso(),
+                    after_last_day.to_iso()
+                )));
+            }
+            (lo, hi, lo != asked || hi != end)
+        }
+        None => (asked, end, false),
+    };
+    let window_days = (end.0 - start.0) as f64 / 86_400.0;
     let message = format!("reading {} days of history for {}", s.history_days, s.metric);
     let history = super::with_progress(&message, || ctx.history(metric, log, start, end))?;
     let (mean, sd) = (history.mean, history.sd);
@@ -138,7 +171,7 @@ pub fn run(global: &Global, s: Settings) -> Result<Outcome> {
             s.metric
         )));
     }
-    let measured = history.units as f64 / s.history_days as f64;
+    let measured = history.units as f64 / window_days;
     let per_day = s.units_per_day.unwrap_or(measured);
     let target = Target {
         mde: s.mde,
@@ -157,6 +190,9 @@ pub fn run(global: &Global, s: Settings) -> Result<Outcome> {
         units_per_day: per_day,
         units_per_day_measured: measured,
         units_per_day_given: s.units_per_day.is_some(),
+        history_days_asked: s.history_days,
+        history_days: window_days,
+        bounded,
         mde: s.mde,
         alpha: s.alpha,
         power: s.power,

@@ -416,6 +416,14 @@ impl crate::probe::Binder for LocalEngine {
             .map_err(|e| e.to_string())
     }
 
+    fn text_values(&self, sql: &str) -> Option<Vec<String>> {
+        let mut stmt = self.conn.prepare(sql).ok()?;
+        let rows = stmt.query_map([], |r| r.get::<_, Option<String>>(0)).ok()?;
+        rows.collect::<std::result::Result<Vec<_>, _>>()
+            .ok()
+            .map(|v| v.into_iter().flatten().collect())
+    }
+
     fn has_rows(&self, sql: &str) -> Option<bool> {
         self.conn
             .query_row(&format!("SELECT count(*) FROM ({sql}) AS q"), [], |r| {

@@ -16,6 +16,12 @@ pub struct PowerReport<'a> {
     pub units_per_day_measured: f64,
     /// The traffic was given on the command line, not measured.
     pub units_per_day_given: bool,
+    /// `--history-days` as asked.
+    pub history_days_asked: i64,
+    /// Days of the window actually used (the asked window within the exposure log's days).
+    pub history_days: f64,
+    /// The window was cut to the days the exposure log covers.
+    pub bounded: bool,
     pub mde: f64,
     pub alpha: f64,
     pub power: f64,
@@ -29,7 +35,8 @@ pub fn json(r: &PowerReport) -> String {
     let s = &r.study;
     let json = serde_json::json!({
         "metric": r.metric,
-        "history": {"start": r.start, "end": r.end, "units": h.n, "mean": h.mean, "sd": h.sd},
+        "history": {"start": r.start, "end": r.end, "units": h.n, "mean": h.mean, "sd": h.sd,
+                    "days": r.history_days, "days_asked": r.history_days_asked, "bounded_by_exposure_log": r.bounded},
         "units_per_day": r.units_per_day,
         "units_per_day_measured": r.units_per_day_measured,
         "mde": r.mde, "alpha": r.alpha, "power": r.power, "split": r.split,
@@ -52,6 +59,13 @@ pub fn text(r: &PowerReport) -> String {
         r.start,
         r.end
     );
+    if r.bounded {
+        out += &format!(
+            "History: {} of the {} days asked for, because the exposure log covers only those.\n",
+            sig(r.history_days, 3),
+            r.history_days_asked
+        );
+    }
     out += &format!(
         "Traffic: {} units per day{}.\n",
         sig(r.units_per_day, 4),
