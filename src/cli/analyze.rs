@@ -40,6 +40,10 @@ pub struct AnalyzeArgs {
     /// The most values one segment may have (more is usually an id, not a grouping).
     #[arg(long, value_name = "N", default_value_t = crate::compile::MAX_SEGMENT_VALUES)]
     max_segment_values: usize,
+    /// Share of experiments like this one that truly work (0 to 1), for the false-positive
+    /// risk stated beside a significant primary result.
+    #[arg(long, value_name = "SHARE", default_value_t = crate::compile::PRIOR_SUCCESS)]
+    prior_success: f64,
     /// The most metrics one readout computes on an engine (the per-unit table grows with
     /// units x metrics; raise it only where the engine has the memory).
     #[arg(long, value_name = "N", default_value_t = crate::compile::MAX_READOUT_METRICS)]
@@ -64,6 +68,12 @@ pub struct Settings {
 impl Settings {
     pub fn from_args(a: AnalyzeArgs) -> Result<Settings> {
         super::check_alpha(a.alpha)?;
+        if !(a.prior_success > 0.0 && a.prior_success < 1.0) {
+            return Err(crate::error::Error::usage(format!(
+                "--prior-success must be a share between 0 and 1 (exclusive), e.g. 0.2; got {}",
+                a.prior_success
+            )));
+        }
         let source = match (a.stats, a.engine) {
             (Some(file), _) => Source::StatsFile(file),
             (None, Some(url)) => Source::Engine(postgres_engine(&url)?),
@@ -81,6 +91,7 @@ impl Settings {
                 population_impact: local,
                 max_segment_values: a.max_segment_values,
                 max_metrics: a.max_metrics,
+                prior_success: a.prior_success,
             },
             format: a.format,
             style: crate::output::TextStyle { wide: a.wide },

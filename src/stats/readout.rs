@@ -49,6 +49,10 @@ pub struct ReadoutSpec {
     pub cuped: bool,
     /// Always-valid (mSPRT) p-values and intervals instead of fixed-sample ones.
     pub sequential: bool,
+    /// Prior share of experiments that truly work (for the false-positive risk).
+    pub prior_success: f64,
+    /// Days from start to the data cut-off.
+    pub days: f64,
 }
 
 #[derive(Debug, Clone)]
@@ -127,6 +131,23 @@ pub struct Readout {
     pub sequential: bool,
     pub assumptions: Vec<String>,
     pub cautions: Vec<String>,
+    /// Automatic trust checks that flagged something (each also a caution); checks that passed
+    /// are not listed. `trust_checks_run` names every check that ran.
+    pub trust_checks: Vec<TrustCheck>,
+    pub trust_checks_run: Vec<&'static str>,
+}
+
+/// One flagged trust check.
+#[derive(Debug, Clone, Serialize)]
+pub struct TrustCheck {
+    /// `pre_period_imbalance`, `segment_sample_ratio`, `false_positive_risk`, `short_run`,
+    /// `partial_weeks`.
+    pub check: &'static str,
+    /// What it is about: a metric and arm, a segment value, or the experiment.
+    pub subject: String,
+    pub p_value: Option<f64>,
+    /// The check's number where it has one (false-positive risk, days).
+    pub value: Option<f64>,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -523,6 +544,11 @@ struct Inputs {
     mde: Option<f64>,
 }
 
+/// A slice of the statistics table: `None` for the whole population, else (segment, value).
+type SliceKey<'a> = Option<&'a (String, Option<String>)>;
+/// A slice and its arm rows.
+type Group<'a> = (SliceKey<'a>, Vec<&'a ArmRow>);
+
 /// Builds the readout. Pure: the same table and spec always give the same readout.
 pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
     let planned: BTreeMap<&str, f64> = spec.arms.iter().map(|(a, s)| (a.as_str(), *s)).collect();
@@ -557,9 +583,8 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
 
     // Rows grouped by segment value in order of first appearance (the whole population first),
     // in one pass: a segment may have tens of thousands of values, so no per-group rescans.
-    type Key<'a> = Option<&'a (String, Option<String>)>;
-    let mut groups: Vec<(Key, Vec<&ArmRow>)> = vec![(None, Vec::new())];
-    let mut index: std::collections::HashMap<Key, usize> = std::collections::HashMap::from([(None, 0)]);
+    let mut groups: Vec<Group> = vec![(None, Vec::new())];
+    let mut index: std::collections::HashMap<SliceKey, usize> = std::collections::HashMap::from([(None, 0)]);
     for r in &table.rows {
         let key = r.segment.as_ref();
         let i = *index.entry(key).or_insert_with(|| {
@@ -592,7 +617,8 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
         unknown_arm,
         rows_without_unit: table.excluded_rows_without_unit,
     };
-    let cautions = cautions(spec, srm.as_ref(), &excluded, &results, &guardrails_failed);
+    let mut cautions = cautions(spec, srm.as_ref(), &excluded, &results, &guardrails_failed);
+    let trust_checks = trust_checks(spec, table, &groups, &results, &mut cautions);
     let headline = headline(spec, srm.as_ref(), &results, &guardrails_failed);
     Readout {
         headline,
@@ -612,6 +638,184 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
         sequential: spec.sequential,
         assumptions: assumptions(spec),
         cautions,
+        trust_checks,
+        trust_checks_run: TRUST_CHECKS.to_vec(),
+    }
+}
+
+/// Every automatic trust check, in the order they run.
+pub const TRUST_CHECKS: &[&str] = &[
+    "pre_period_imbalance",
+    "segment_sample_ratio",
+    "false_positive_risk",
+    "short_run",
+    "partial_weeks",
+];
+
+/// Below this p-value a pre-period difference between arms is flagged (common practice: the
+/// same strict level as the sample-ratio check, since with many metrics some p < 0.05 are
+/// expected by chance).
+pub const IMBALANCE_THRESHOLD: f64 = 0.001;
+
+/// Fewer days than this do not average out the weekly cycle (common practice: run whole weeks,
+/// at least one).
+pub const MIN_DAYS: f64 = 7.0;
+
+/// The automatic trust checks of a readout; each flag also becomes a plain-words caution.
+///
+/// - Pre-period imbalance: Welch's t on each CUPED covariate (the metric's own value before
+///   exposure) between control and each arm; randomisation makes the arms alike before
+///   exposure, so p < 0.001 points at broken assignment or a covariate window that overlaps
+///   exposure (Deng, Xu, Kohavi & Walker 2013 use the pre-period for exactly this reason).
+/// - Sample ratio per segment value: Pearson's chi-square of the arm sizes within each segment
+///   value against the planned split, Benjamini–Hochberg adjusted over all segment values,
+///   flagged below 0.001 like the overall check: a mismatch inside one slice (one device, one
+///   region) is a logging or eligibility bug there, which the overall check can miss.
+/// - False-positive risk of each significant primary row: P(no real effect | significant) =
+///   (α'/2)(1 − π) / ((α'/2)(1 − π) + (1 − β)π) with π the prior success rate, 1 − β = 0.8
+///   the design power and α' the row's planning level (Kohavi, Deng & Vermeer 2022, "A/B
+///   Testing Intuition Busters", KDD, §4; the halved α counts only the significant direction
+///   taken as success; formula recalled from memory).
+/// - Short run and partial weeks: fewer than 7 days from start to cut-off, or a duration that
+///   is not whole weeks, leave the weekly cycle unevenly represented (common practice).
+fn trust_checks(
+    spec: &ReadoutSpec,
+    table: &StatsTable,
+    groups: &[Group],
+    results: &[ResultRow],
+    cautions: &mut Vec<String>,
+) -> Vec<TrustCheck> {
+    let mut out = Vec::new();
+    let overall = |arm: &str| table.rows.iter().find(|r| r.arm == arm && r.segment.is_none());
+    // Pre-period imbalance.
+    for m in &spec.metrics {
+        let columns: Vec<&str> = match &m.covariate {
+            Some(CovariateShape::Mean { column, .. }) => vec![column],
+            Some(CovariateShape::Ratio {
+                numerator,
+                denominator,
+                ..
+            }) => vec![numerator, denominator],
+            None => continue,
+        };
+        let Some(control) = overall(&spec.control) else {
+            continue;
+        };
+        for (arm, _) in spec.arms.iter().skip(1) {
+            let Some(treatment) = overall(arm) else { continue };
+            let worst = columns
+                .iter()
+                .filter_map(|c| {
+                    let (a, b) = (control.columns.get(*c)?, treatment.columns.get(*c)?);
+                    super::welch(a, b, spec.alpha).and_then(|e| e.p_value)
+                })
+                .fold(None, |acc: Option<f64>, p| Some(acc.map_or(p, |a| a.min(p))));
+            if let Some(p) = worst.filter(|p| *p < IMBALANCE_THRESHOLD) {
+                cautions.push(format!(
+                    "Pre-period imbalance: before exposure, {} already differed between {} and {arm} (Welch p = {:.1e}). Random assignment makes arms alike before exposure: check assignment, and that the covariate window ends before exposure. CUPED corrects for the observed difference, but the cause may bias other metrics too.",
+                    m.name, spec.control, p
+                ));
+                out.push(TrustCheck {
+                    check: "pre_period_imbalance",
+                    subject: format!("{} ({arm})", m.name),
+                    p_value: Some(p),
+                    value: None,
+                });
+            }
+        }
+    }
+    // Sample ratio per segment value.
+    let shares: Vec<f64> = spec.arms.iter().map(|(_, s)| *s).collect();
+    let mut slices: Vec<(String, f64)> = Vec::new();
+    for (key, rows) in groups.iter().skip(1) {
+        let Some((name, value)) = key else { continue };
+        let observed: Vec<u64> = spec
+            .arms
+            .iter()
+            .map(|(a, _)| rows.iter().find(|r| &r.arm == a).map(|r| r.units).unwrap_or(0))
+            .collect();
+        // Too few units for the chi-square approximation say nothing either way.
+        if observed.iter().sum::<u64>() < 20 {
+            continue;
+        }
+        if let Some(s) = super::sample_ratio(&observed, &shares) {
+            slices.push((
+                format!("{name} = {}", value.as_deref().unwrap_or("(none)")),
+                s.p_value,
+            ));
+        }
+    }
+    let p: Vec<f64> = slices.iter().map(|(_, p)| *p).collect();
+    let adjusted = super::multiple::benjamini_hochberg(&p);
+    for ((subject, _), adj) in slices.iter().zip(&adjusted) {
+        if *adj < super::SRM_THRESHOLD {
+            cautions.push(format!(
+                "Sample-ratio mismatch within segment {subject} (BH-adjusted p = {adj:.1e}): assignment or logging differs for these units; do not read their rows."
+            ));
+            out.push(TrustCheck {
+                check: "segment_sample_ratio",
+                subject: subject.clone(),
+                p_value: Some(*adj),
+                value: None,
+            });
+        }
+    }
+    // False-positive risk of significant primary results.
+    let pi = spec.prior_success;
+    for r in results
+        .iter()
+        .filter(|r| r.segment.is_none() && r.role == Role::Primary && r.change.is_significant())
+    {
+        let a = r.power.planned_alpha / 2.0;
+        let fpr = a * (1.0 - pi) / (a * (1.0 - pi) + 0.8 * pi);
+        cautions.push(format!(
+            "False-positive risk: if {:.0}% of ideas like this one truly work (--prior-success), a significant {} at this level is a false positive about {:.0}% of the time (Kohavi, Deng & Vermeer 2022). A surprising result deserves a replication.",
+            pi * 100.0,
+            r.metric,
+            fpr * 100.0
+        ));
+        out.push(TrustCheck {
+            check: "false_positive_risk",
+            subject: format!("{} ({})", r.metric, r.arm),
+            p_value: None,
+            value: Some(fpr),
+        });
+    }
+    // Duration.
+    let days = spec.days;
+    if days < MIN_DAYS {
+        cautions.push(format!(
+            "Short run: {} from start to cut-off; weekday and weekend behaviour are not yet both represented, and early effects (novelty) dominate. Run at least one whole week.",
+            plural_days(days)
+        ));
+        out.push(TrustCheck {
+            check: "short_run",
+            subject: spec.experiment.clone(),
+            p_value: None,
+            value: Some(days),
+        });
+    } else if (days / 7.0 - (days / 7.0).round()).abs() > 1e-9 {
+        cautions.push(format!(
+            "Partial weeks: {} is not a whole number of weeks, so some weekdays count more than others; if behaviour differs by weekday, the averages lean towards the days counted twice.",
+            plural_days(days)
+        ));
+        out.push(TrustCheck {
+            check: "partial_weeks",
+            subject: spec.experiment.clone(),
+            p_value: None,
+            value: Some(days),
+        });
+    }
+    out
+}
+
+fn plural_days(days: f64) -> String {
+    if (days - 1.0).abs() < 1e-9 {
+        "1 day".into()
+    } else if days.fract().abs() < 1e-9 {
+        format!("{days:.0} days")
+    } else {
+        format!("{days:.1} days")
     }
 }
 
@@ -1195,6 +1399,8 @@ mod tests {
             exploratory_segments: vec![],
             cuped: true,
             sequential: false,
+            prior_success: 0.2,
+            days: 28.0,
         }
     }
 
@@ -1373,6 +1579,105 @@ mod tests {
         let se = a.difference.as_ref().unwrap().se;
         let want = crate::stats::power::mde(se, 0.025, 0.8);
         assert!((a.power.mde.unwrap() - want).abs() < 1e-12);
+    }
+
+    /// False-positive risk (Kohavi, Deng & Vermeer 2022): one primary row planned at α = 0.05,
+    /// prior success 20%, power 80%: 0.025·0.8 / (0.025·0.8 + 0.8·0.2) = 1/9.
+    #[test]
+    fn significant_primary_rows_state_their_false_positive_risk() {
+        let s = spec(vec![metric("a", Role::Primary, false)]);
+        let t = table(&[("a", (2000, 1.0, 1.0), (2000, 1.2, 1.0))]);
+        let r = build(&s, &t);
+        assert_eq!(r.results[0].verdict, Verdict::Better);
+        let f = r
+            .trust_checks
+            .iter()
+            .find(|c| c.check == "false_positive_risk")
+            .unwrap();
+        assert!((f.value.unwrap() - 1.0 / 9.0).abs() < 1e-12, "{f:?}");
+        assert!(
+            r.cautions
+                .iter()
+                .any(|c| c.contains("false positive about 11% of the time"))
+        );
+    }
+
+    #[test]
+    fn pre_period_imbalance_is_flagged() {
+        let mut m = metric("a", Role::Primary, false);
+        m.covariate = Some(CovariateShape::Mean {
+            column: "a__pre".into(),
+            covariance: "a__cov__a__pre".into(),
+        });
+        let s = spec(vec![m]);
+        let mut t = table(&[("a", (2000, 1.0, 1.0), (2000, 1.0, 1.0))]);
+        for (row, pre) in t.rows.iter_mut().zip([1.0, 1.3]) {
+            row.columns.insert(
+                "a__pre".into(),
+                Moments {
+                    n: 2000,
+                    mean: pre,
+                    var: 1.0,
+                },
+            );
+            row.covariances.insert("a__cov__a__pre".into(), 0.5);
+        }
+        let r = build(&s, &t);
+        let c = r
+            .trust_checks
+            .iter()
+            .find(|c| c.check == "pre_period_imbalance")
+            .unwrap();
+        assert!(c.p_value.unwrap() < 1e-10);
+        assert!(
+            r.cautions
+                .iter()
+                .any(|c| c.starts_with("Pre-period imbalance: before exposure, a"))
+        );
+        assert_eq!(r.trust_checks_run, TRUST_CHECKS);
+    }
+
+    #[test]
+    fn sample_ratio_is_checked_within_segment_values() {
+        let s = spec(vec![metric("a", Role::Primary, false)]);
+        let mut t = table(&[("a", (2000, 1.0, 1.0), (2000, 1.0, 1.0))]);
+        for (value, (c, tr)) in [("mobile", (1000u64, 1000u64)), ("desktop", (1000, 600))] {
+            for (arm, n) in [("control", c), ("treatment", tr)] {
+                let mut row = t.rows[0].clone();
+                row.arm = arm.into();
+                row.units = n;
+                row.segment = Some(("device".into(), Some(value.into())));
+                t.rows.push(row);
+            }
+        }
+        let r = build(&s, &t);
+        let flagged: Vec<&str> = r
+            .trust_checks
+            .iter()
+            .filter(|c| c.check == "segment_sample_ratio")
+            .map(|c| c.subject.as_str())
+            .collect();
+        assert_eq!(flagged, ["device = desktop"]);
+    }
+
+    #[test]
+    fn short_runs_and_partial_weeks_are_flagged() {
+        let t = table(&[("a", (2000, 1.0, 1.0), (2000, 1.0, 1.0))]);
+        for (days, check) in [
+            (3.0, Some("short_run")),
+            (10.0, Some("partial_weeks")),
+            (14.0, None),
+        ] {
+            let mut s = spec(vec![metric("a", Role::Primary, false)]);
+            s.days = days;
+            let r = build(&s, &t);
+            let got = r
+                .trust_checks
+                .iter()
+                .find(|c| c.check == "short_run" || c.check == "partial_weeks")
+                .map(|c| c.check);
+            assert_eq!(got, check, "{days} days");
+        }
     }
 
     #[test]
