@@ -520,3 +520,164 @@ fn significance_levels_outside_a_sane_range_are_refused() {
         );
     }
 }
+
+/// Runs plumb in `dir` without `--workspace`.
+fn plumb_here(dir: &Path, args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .current_dir(dir)
+        .args(args)
+        .output()
+        .unwrap()
+}
+
+#[test]
+fn the_workspace_is_found_upwards_like_git_and_cargo() {
+    let ws = workspace(&[]);
+    let deep = ws.path().join("metrics/sub");
+    std::fs::create_dir_all(&deep).unwrap();
+    let out = plumb_here(&deep, &["check"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    assert!(text(&out.stdout).starts_with("ok: "));
+    // Without any plumb.yaml above, the error says where plumb looked.
+    let empty = tempfile::tempdir().unwrap();
+    let out = plumb_here(empty.path(), &["check"]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(
+        text(&out.stderr).contains("the folders above it"),
+        "{}",
+        text(&out.stderr)
+    );
+}
+
+#[test]
+fn demo_refuses_a_folder_that_is_not_empty_unless_forced() {
+    let dir = tempfile::tempdir().unwrap();
+    std::fs::write(dir.path().join("notes.txt"), "mine").unwrap();
+    let target = dir.path().to_str().unwrap();
+    let args = ["demo", target, "--shoppers", "200", "--no-readout"];
+    let out = plumb_here(dir.path(), &args);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(
+        text(&out.stderr).contains("is not empty"),
+        "{}",
+        text(&out.stderr)
+    );
+    assert!(!dir.path().join("plumb.yaml").exists(), "nothing was written");
+    let mut forced = args.to_vec();
+    forced.push("--force");
+    assert_eq!(plumb_here(dir.path(), &forced).status.code(), Some(0));
+    assert_eq!(
+        std::fs::read_to_string(dir.path().join("notes.txt")).unwrap(),
+        "mine"
+    );
+    // An earlier demo folder is rewritten without --force.
+    assert_eq!(plumb_here(dir.path(), &args).status.code(), Some(0));
+}
+
+#[test]
+fn list_shows_the_catalog_and_mde_takes_a_fraction() {
+    let demo = small_demo(3, 400);
+    let out = plumb(demo.path(), &["list"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let shown = text(&out.stdout);
+    for want in [
+        "Metrics (7):",
+        "avg_basket  per shopper: ratio revenue / orders",
+        "one_page_checkout",
+    ] {
+        assert!(shown.contains(want), "{want}:\n{shown}");
+    }
+    let json: serde_json::Value =
+        serde_json::from_slice(&plumb(demo.path(), &["list", "--format", "json"]).stdout).unwrap();
+    assert_eq!(json["experiments"].as_array().unwrap().len(), 2);
+    let pct = plumb(
+        demo.path(),
+        &["power", "orders", "--mde", "5%", "--format", "json"],
+    );
+    let frac = plumb(
+        demo.path(),
+        &["power", "orders", "--mde", "0.05", "--format", "json"],
+    );
+    assert_eq!(pct.status.code(), Some(0), "{}", text(&pct.stderr));
+    assert_eq!(pct.stdout, frac.stdout, "5% and 0.05 are the same request");
+    let five = plumb(demo.path(), &["power", "orders", "--mde", "5"]);
+    assert_eq!(five.status.code(), Some(2), "5 alone is ambiguous");
+    // Every --by takes a comma list; a report still slices by one segment.
+    let out = plumb(
+        demo.path(),
+        &[
+            "report",
+            "orders",
+            "--by",
+            "region,device",
+            "--from",
+            "2026-03-01",
+            "--to",
+            "2026-03-08",
+        ],
+    );
+    assert_eq!(out.status.code(), Some(2));
+    assert!(
+        text(&out.stderr).contains("one segment at a time"),
+        "{}",
+        text(&out.stderr)
+    );
+}
+
+#[test]
+fn every_command_has_examples_in_its_help() {
+    for cmd in [
+        "check", "sql", "analyze", "diff", "list", "schema", "report", "power", "demo",
+    ] {
+        let out = plumb_here(Path::new("."), &[cmd, "--help"]);
+        assert_eq!(out.status.code(), Some(0), "{cmd}");
+        let help = text(&out.stdout);
+        assert!(help.contains("Example"), "{cmd} --help has no examples:\n{help}");
+        assert!(
+            help.contains(&format!("plumb {cmd}")),
+            "{cmd}: examples use the command"
+        );
+    }
+}
+
+#[test]
+fn color_is_decided_by_the_flag_and_no_color() {
+    let demo = small_demo(3, 400);
+    // A void readout: its headline is coloured.
+    let catalog = demo.path().join("metrics/plant_shop.yaml");
+    let yaml = std::fs::read_to_string(&catalog).unwrap();
+    std::fs::write(
+        &catalog,
+        yaml.replacen(
+            "split: {control: 50, treatment: 50}",
+            "split: {control: 95, treatment: 5}",
+            1,
+        ),
+    )
+    .unwrap();
+    let args = ["analyze", "one_page_checkout"];
+    let always = plumb(demo.path(), &[&args[..], &["--color", "always"]].concat());
+    let never = plumb(demo.path(), &[&args[..], &["--color", "never"]].concat());
+    assert_eq!(always.status.code(), Some(3));
+    let (always, never) = (text(&always.stdout), text(&never.stdout));
+    assert!(always.starts_with("\x1b[1m\x1b[31mVOID"), "{always}");
+    let strip = |s: &str| {
+        [
+            "\x1b[31m", "\x1b[32m", "\x1b[33m", "\x1b[36m", "\x1b[1m", "\x1b[0m",
+        ]
+        .iter()
+        .fold(s.to_string(), |acc, code| acc.replace(code, ""))
+    };
+    assert_eq!(strip(&always), never, "colour changes nothing but colour");
+    assert!(!never.contains('\x1b'));
+    // auto: a pipe gets no colour; NO_COLOR is honoured even with a terminal (not testable
+    // here), and --color always wins over it.
+    assert!(!text(&plumb(demo.path(), &args).stdout).contains('\x1b'));
+    let forced = Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .current_dir(demo.path())
+        .env("NO_COLOR", "1")
+        .args(["--color", "always", "analyze", "one_page_checkout"])
+        .output()
+        .unwrap();
+    assert!(text(&forced.stdout).contains('\x1b'));
+}

@@ -98,7 +98,15 @@ fn a_shared_event_table_change_reaches_every_experiment_through_its_metrics() {
     let before = status(dir.path());
     let out = plumb(
         dir.path(),
-        &["diff", "--base", "HEAD", "--data", "--format", "json"],
+        &[
+            "diff",
+            "--base",
+            "HEAD",
+            "--data",
+            "--format",
+            "json",
+            "--exit-code",
+        ],
     );
     assert_eq!(
         out.status.code(),
@@ -185,10 +193,16 @@ fn a_verdict_flip_fails_with_fail_on_verdict_change() {
     let text = String::from_utf8_lossy(&out.stdout);
     assert!(text.contains("changed metric `orders` (where)"), "{text}");
     assert!(text.contains("VERDICT CHANGED"), "{text}");
-    let out = plumb(dir.path(), &["diff", "--head", "HEAD"]);
+    let out = plumb(dir.path(), &["diff", "--head", "HEAD", "--exit-code"]);
     assert_eq!(
         out.status.code(),
         Some(4),
-        "without the flag a definition change exits 4"
+        "with --exit-code a definition change exits 4"
     );
+    let out = plumb(dir.path(), &["diff", "--head", "HEAD"]);
+    assert_eq!(out.status.code(), Some(0), "without it, 0 like git diff");
+    // --fail-on-verdict-change needs --data (clap refuses it alone, exit 2).
+    let out = plumb(dir.path(), &["diff", "--fail-on-verdict-change"]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("--data"));
 }

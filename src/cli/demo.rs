@@ -20,6 +20,19 @@ pub struct DemoArgs {
     /// Only write the files; do not print the readout.
     #[arg(long)]
     no_readout: bool,
+    /// Write into a folder that is not empty (files of the demo's names are overwritten,
+    /// others are left alone). Not needed to rewrite an earlier demo folder.
+    #[arg(long)]
+    force: bool,
+}
+
+/// Whether writing the demo into `dir` could overwrite someone's files: the folder exists, is
+/// not empty, and is not a folder an earlier `plumb demo` wrote (it leaves a marker file).
+fn refuse_to_write(dir: &std::path::Path) -> bool {
+    let Ok(mut entries) = std::fs::read_dir(dir) else {
+        return false; // does not exist (yet), or not a folder: writing reports that
+    };
+    entries.next().is_some() && !dir.join(crate::demo::MARKER).is_file()
 }
 
 pub fn run(global: &Global, a: DemoArgs) -> Result<Outcome> {
@@ -29,6 +42,12 @@ pub fn run(global: &Global, a: DemoArgs) -> Result<Outcome> {
         shoppers: a.shoppers,
     };
     let dir = &a.dir;
+    if !a.force && refuse_to_write(dir) {
+        return Err(Error::usage(format!(
+            "{} is not empty and was not written by `plumb demo`; choose another folder, or pass --force to write the demo files into it (files of other names are kept)",
+            dir.display()
+        )));
+    }
     let summary = crate::demo::write_demo(dir, &config).map_err(|e| {
         Error::usage(format!("cannot write the demo into {}: {e}", dir.display())).with_source(e)
     })?;

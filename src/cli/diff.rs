@@ -36,8 +36,12 @@ pub struct DiffArgs {
     data: bool,
     #[arg(long, value_enum, default_value = "table")]
     format: DiffFormat,
-    /// Exit with 5 when any readout verdict changes (needs --data).
+    /// Exit with 4 when definitions changed (default: 0 whatever the diff shows, like
+    /// `git diff`; scripts that gate on changes pass this).
     #[arg(long)]
+    exit_code: bool,
+    /// Exit with 5 when any readout verdict changes.
+    #[arg(long, requires = "data")]
     fail_on_verdict_change: bool,
 }
 
@@ -119,7 +123,7 @@ pub fn run(global: &Global, a: DiffArgs) -> Result<Outcome> {
     };
     let code = if a.fail_on_verdict_change && d.verdict_flips() > 0 {
         EXIT_VERDICT_CHANGED
-    } else if !d.changes.is_empty() {
+    } else if a.exit_code && !d.changes.is_empty() {
         EXIT_DEFINITIONS_CHANGED
     } else {
         0

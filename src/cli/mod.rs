@@ -15,6 +15,7 @@ mod analyze;
 mod check;
 mod demo;
 mod diff;
+mod list;
 #[cfg(feature = "postgres")]
 mod pg;
 mod power;
@@ -36,7 +37,7 @@ pub const EXIT_CATALOG: u8 = 1;
 pub const EXIT_USAGE: u8 = 2;
 /// Exit code: the readout is void (sample-ratio mismatch) or a guardrail failed.
 pub const EXIT_CHECKS: u8 = 3;
-/// Exit code (`plumb diff`): definitions changed.
+/// Exit code (`plumb diff --exit-code`): definitions changed.
 pub const EXIT_DEFINITIONS_CHANGED: u8 = 4;
 /// Exit code (`plumb diff --fail-on-verdict-change`): a readout verdict changed.
 pub const EXIT_VERDICT_CHANGED: u8 = 5;
@@ -48,7 +49,8 @@ pub const EXIT_VERDICT_CHANGED: u8 = 5;
     about = "Metric definitions declared once in YAML, compiled to warehouse SQL, analysed as experiment readouts."
 )]
 pub struct Args {
-    /// Workspace folder (holding plumb.yaml); default: the current folder.
+    /// Workspace folder (holding plumb.yaml); default: the nearest folder holding a plumb.yaml,
+    /// from the current folder upwards (as git and cargo find theirs).
     #[arg(long, global = true, value_name = "DIR")]
     pub workspace: Option<PathBuf>,
     /// Extra dialect folders, searched before the built-in ones.
@@ -93,21 +95,62 @@ pub enum Format {
 
 #[derive(Debug, Subcommand)]
 pub enum Command {
-    /// Check the workspace: load, resolve and compile every experiment.
+    /// Check the workspace: load, resolve and compile every experiment, bind it to the local data.
+    #[command(after_help = "Examples:
+  plumb check                       # one-line summary, or every error located at file:line:column
+  plumb check --format json         # diagnostics as data, for editors and bots
+  plumb check --deny warnings       # CI: warnings fail too (exit 1)")]
     Check(check::CheckArgs),
     /// Print the readout SQL of an experiment (or, with --report, a report's SQL).
+    #[command(after_help = "Examples:
+  plumb sql one_page_checkout                       # the workspace's dialect
+  plumb sql one_page_checkout --dialect bigquery --by region
+  plumb sql --report orders,revenue --from 2026-01-01 --to 2026-04-01 --grain week")]
     Sql(sql::SqlArgs),
     /// Run an experiment's SQL on the local data and print its readout.
+    #[command(after_help = "Examples:
+  plumb analyze one_page_checkout                   # headline, table, cautions (100 columns)
+  plumb analyze one_page_checkout --by region,device --sequential
+  plumb analyze one_page_checkout --format json     # schema_version 2; see README
+  plumb analyze one_page_checkout --stats stats.csv # numbers computed in a warehouse
+  plumb analyze one_page_checkout --engine postgres://analyst@db:5432/shop
+
+Exit codes: 0 ok, 2 usage/data/engine error, 3 void (sample-ratio mismatch) or a failed guardrail.")]
     Analyze(analyze::AnalyzeArgs),
     /// What a catalog change does: definitions, affected experiments and reports, SQL and numbers.
+    #[command(after_help = "Examples:
+  plumb diff                                        # working tree against the merge base
+  plumb diff --base main --data --format markdown   # with readout numbers, for a pull request
+  plumb diff --exit-code                            # exit 4 when definitions changed
+  plumb diff --data --fail-on-verdict-change        # exit 5 when a verdict changed")]
     Diff(diff::DiffArgs),
+    /// List the catalog's units, tables, exposure logs, segments, metrics and experiments.
+    #[command(after_help = "Examples:
+  plumb list
+  plumb list --format json")]
+    List(list::ListArgs),
     /// Print the JSON Schema of catalog files (for editors and YAML language servers).
+    #[command(after_help = "Example:
+  plumb schema > plumb-catalog.schema.json
+  # then, first line of a catalog file:
+  # yaml-language-server: $schema=../plumb-catalog.schema.json")]
     Schema,
     /// A metric as a time series over the whole population of its unit.
+    #[command(after_help = "Examples:
+  plumb report orders revenue --grain week --from 2026-02-09 --to 2026-03-30
+  plumb report orders --by region --format csv")]
     Report(report::ReportArgs),
     /// Units and days an experiment needs to detect a change in a metric, from history.
+    #[command(after_help = "Examples:
+  plumb power orders --mde 5%                       # or --mde 0.05
+  plumb power orders --mde 2% --split 34,33,33 --days 14
+  plumb power revenue --mde 3% --history-days 28 --until 2026-03-01")]
     Power(power::PowerArgs),
     /// Write the plant-shop demo workspace and print its main readout.
+    #[command(after_help = "Examples:
+  plumb demo                         # writes ./plumb-demo and prints its readout
+  plumb demo /tmp/shop --shoppers 20000 --no-readout
+  plumb demo my-folder --force       # write into a folder that is not empty")]
     Demo(demo::DemoArgs),
 }
 
@@ -172,7 +215,7 @@ pub fn run() -> ExitCode {
         }
     };
     let global = Global {
-        workspace: args.workspace.clone().unwrap_or_else(|| PathBuf::from(".")),
+        workspace: args.workspace.clone().unwrap_or_else(find_workspace),
         dialects_dir: args.dialects_dir.clone(),
     };
     let result = match args.command {
@@ -180,6 +223,7 @@ pub fn run() -> ExitCode {
         Command::Sql(a) => sql::Settings::from_args(a).and_then(|s| sql::run(&global, s)),
         Command::Analyze(a) => analyze::Settings::from_args(a).and_then(|s| analyze::run(&global, s)),
         Command::Diff(a) => diff::run(&global, a),
+        Command::List(a) => list::run(&global, a),
         Command::Schema => {
             let schema = crate::load::syntax::catalog_schema();
             serde_json::to_string_pretty(&schema)
@@ -207,6 +251,24 @@ pub fn run() -> ExitCode {
         }
         Err(e) => ExitCode::from(report_error(&e)),
     }
+}
+
+/// The nearest folder holding a `plumb.yaml`, from the current folder upwards; `.` when there
+/// is none (the "no plumb.yaml" error then names the current folder).
+fn find_workspace() -> PathBuf {
+    let Ok(here) = std::env::current_dir() else {
+        return PathBuf::from(".");
+    };
+    here.ancestors()
+        .find(|d| d.join(crate::load::WORKSPACE_FILE).is_file())
+        .map(|d| {
+            if d == here {
+                PathBuf::from(".")
+            } else {
+                d.to_path_buf()
+            }
+        })
+        .unwrap_or_else(|| PathBuf::from("."))
 }
 
 /// Prints an error and returns its exit code.
@@ -286,6 +348,17 @@ fn with_progress<T>(message: &str, f: impl FnOnce() -> T) -> T {
     out
 }
 
+/// A relative change or share written as `5%` or `0.05` (positive; without `%` below 1, so
+/// that `5` is not read as 500%).
+fn parse_share(text: &str) -> Option<f64> {
+    let t = text.trim();
+    let value = match t.strip_suffix('%') {
+        Some(p) => p.trim().parse::<f64>().ok()? / 100.0,
+        None => t.parse::<f64>().ok().filter(|v| *v < 1.0)?,
+    };
+    (value.is_finite() && value > 0.0).then_some(value)
+}
+
 /// JSON text of a boundary value, pretty and newline-terminated.
 fn json(value: &impl serde::Serialize) -> Result<String> {
     serde_json::to_string_pretty(value)
@@ -307,6 +380,16 @@ pub fn check_alpha(alpha: f64) -> crate::error::Result<()> {
 
 #[cfg(test)]
 mod tests {
+    #[test]
+    fn shares_take_percent_or_fraction() {
+        assert_eq!(super::parse_share("5%"), Some(0.05));
+        assert_eq!(super::parse_share("0.05"), Some(0.05));
+        assert_eq!(super::parse_share(" 2.5 % "), Some(0.025));
+        assert_eq!(super::parse_share("5"), None);
+        assert_eq!(super::parse_share("-1%"), None);
+        assert_eq!(super::parse_share("abc"), None);
+    }
+
     #[test]
     fn control_characters_never_reach_the_terminal_raw() {
         let hostile = "north\u{1b}]0;pwned\u{7}\u{1b}[2J\r\u{9b}\u{202e}x\n\tok";

@@ -11,7 +11,7 @@ use crate::time::Timestamp;
 #[derive(Debug, clap::Args)]
 pub struct PowerArgs {
     metric: String,
-    /// Smallest relative change worth detecting, e.g. `2%`.
+    /// Smallest relative change worth detecting: `2%` or `0.02`.
     #[arg(long)]
     mde: String,
     #[arg(long, default_value_t = 0.05)]
@@ -59,19 +59,12 @@ pub struct Settings {
 
 impl Settings {
     pub fn from_args(a: PowerArgs) -> Result<Settings> {
-        let mde = a
-            .mde
-            .trim()
-            .strip_suffix('%')
-            .and_then(|p| p.trim().parse::<f64>().ok())
-            .filter(|p| *p > 0.0)
-            .map(|p| p / 100.0)
-            .ok_or_else(|| {
-                Error::usage(format!(
-                    "--mde must be a positive percentage such as 2%, got `{}`",
-                    a.mde
-                ))
-            })?;
+        let mde = super::parse_share(&a.mde).ok_or_else(|| {
+            Error::usage(format!(
+                "--mde must be a relative change such as 2% or 0.02, got `{}`",
+                a.mde
+            ))
+        })?;
         super::check_alpha(a.alpha)?;
         if !(a.power > 0.0 && a.power < 1.0) {
             return Err(Error::usage("--power must be between 0 and 1, e.g. 0.8"));

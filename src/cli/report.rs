@@ -44,9 +44,10 @@ pub struct ReportWindow {
 pub struct ReportArgs {
     #[arg(required = true)]
     metrics: Vec<String>,
-    /// Slice by this segment (an exposure-row segment needs --exposed-in).
-    #[arg(long, value_name = "SEGMENT")]
-    by: Option<String>,
+    /// Slice by this segment (an exposure-row segment needs --exposed-in). Comma lists are
+    /// accepted like everywhere else; a report slices by one segment at a time.
+    #[arg(long, value_name = "SEGMENT", value_delimiter = ',')]
+    by: Vec<String>,
     #[command(flatten)]
     window: ReportWindow,
     #[arg(long, value_enum, default_value = "table")]
@@ -144,7 +145,7 @@ impl Request {
 
 pub fn run(global: &Global, args: ReportArgs) -> Result<Outcome> {
     let format = args.format;
-    let request = Request::new(args.metrics, args.by.into_iter().collect(), args.window);
+    let request = Request::new(args.metrics, args.by, args.window);
     let ctx = global.open(EngineChoice::Local)?;
     let plan = request.plan(&ctx)?;
     let rows = super::with_progress("running the report on local DuckDB", || ctx.report(&plan))?;

@@ -108,8 +108,15 @@ const DEVICES: &[&str] = &["mobile", "desktop", "tablet"];
 const PAGES: &[&str] = &["home", "ferns", "succulents", "pots", "care-guides", "cart"];
 
 /// Writes the demo workspace into `dir` (created if needed; existing demo files are replaced).
+/// File a demo folder holds so that `plumb demo` may rewrite it without `--force`.
+pub const MARKER: &str = ".plumb-demo";
+
 pub fn write_demo(dir: &Path, config: &DemoConfig) -> std::io::Result<DemoSummary> {
     std::fs::create_dir_all(dir.join("metrics"))?;
+    std::fs::write(
+        dir.join(MARKER),
+        "Written by `plumb demo`; `plumb demo` may overwrite this folder.\n",
+    )?;
     std::fs::create_dir_all(dir.join("data"))?;
     let mut summary = DemoSummary::default();
     std::fs::write(dir.join("plumb.yaml"), WORKSPACE_FILE)?;

@@ -104,7 +104,7 @@ impl std::fmt::Display for LoadError {
         match self {
             LoadError::NoWorkspace(dir) => write!(
                 f,
-                "no plumb.yaml in {} (run `plumb demo` to create an example workspace, or pass --workspace DIR)",
+                "no plumb.yaml in {} (without --workspace, plumb looks in the current folder and the folders above it; run `plumb demo` to create an example workspace, or pass --workspace DIR)",
                 dir.display()
             ),
             LoadError::Io(path, e) => write!(f, "cannot read {}: {e}", path.display()),
@@ -112,12 +112,15 @@ impl std::fmt::Display for LoadError {
     }
 }
 
+/// The workspace file's name.
+pub const WORKSPACE_FILE: &str = "plumb.yaml";
+
 /// Reads `plumb.yaml` in `dir` and every catalog file it points to.
 pub fn load_workspace(
     dir: &Path,
     sources: &mut SourceMap,
 ) -> Result<(RawWorkspace, RawCatalog, Vec<Diagnostic>), LoadError> {
-    let ws_path = dir.join("plumb.yaml");
+    let ws_path = dir.join(WORKSPACE_FILE);
     if !ws_path.is_file() {
         return Err(LoadError::NoWorkspace(dir.to_path_buf()));
     }
