@@ -29,7 +29,7 @@ metrics:
     where: "status = 'paid'"
 experiments:
   - name: free_shipping
-    exposures: assignments
+    exposure_log: assignments
     control: control
     split: {control: 50, treatment: 50}
     start: 2026-05-04

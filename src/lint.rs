@@ -1,9 +1,12 @@
 //! Lint rules: a catalog that resolves can still be a catalog that misleads.
 //!
 //! Each rule has a stable code, a name and a one-line rationale (`plumb check` prints them as
-//! warnings with a span). Severity per rule is configurable in `plumb.yaml`
-//! (`lint: {L004: off, L005: error}`); `plumb check --deny warnings` turns every warning into
-//! a failure for CI. Rules read the resolved catalog and point at the YAML that triggered them.
+//! warnings with a span). Codes group rules by what they look at: Q1xx a metric's definition,
+//! Q2xx an experiment's design, Q3xx the catalog as a whole; the rule name is the primary id.
+//! Severity per rule is configurable in `plumb.yaml` (`lint: {unused-metric: off, Q202:
+//! error}`); the codes L001–L009 of earlier versions are still accepted there, with warning
+//! W005 naming the new code. `plumb check --deny warnings` turns every warning into a failure
+//! for CI. Rules read the resolved catalog and point at the YAML that triggered them.
 
 use crate::diagnostics::{Diagnostic, Severity};
 use crate::ir::{self, Aggregation, Catalog, MetricKind, Role};
@@ -12,53 +15,65 @@ use crate::load::RawCatalog;
 /// A lint rule: stable code, name and why it matters.
 pub struct Rule {
     pub code: &'static str,
+    /// The code this rule had before codes were renumbered (accepted in `lint:` with warning
+    /// W005).
+    pub old_code: &'static str,
     pub name: &'static str,
     pub rationale: &'static str,
 }
 
 pub const RULES: &[Rule] = &[
     Rule {
-        code: "L001",
+        code: "Q101",
+        old_code: "L001",
         name: "metric-without-description",
         rationale: "a metric nobody can explain gets misread; say what one unit's value means",
     },
     Rule {
-        code: "L002",
+        code: "Q102",
+        old_code: "L002",
         name: "metric-without-owner",
         rationale: "someone must answer for a metric's definition when numbers look wrong",
     },
     Rule {
-        code: "L003",
+        code: "Q201",
+        old_code: "L003",
         name: "window-longer-than-experiment",
         rationale: "units exposed late cannot complete the window, so the metric mixes complete and cut-off windows",
     },
     Rule {
-        code: "L004",
+        code: "Q301",
+        old_code: "L004",
         name: "unused-metric",
         rationale: "a metric no experiment uses is untested by any readout; remove it or use it (reports may still use it)",
     },
     Rule {
-        code: "L005",
+        code: "Q202",
+        old_code: "L005",
         name: "guardrail-without-direction",
         rationale: "a guardrail without `direction` can never fail the readout",
     },
     Rule {
-        code: "L006",
+        code: "Q203",
+        old_code: "L006",
         name: "experiment-without-primary",
         rationale: "without primary metrics every result is secondary, and nothing decides the experiment",
     },
     Rule {
-        code: "L007",
+        code: "Q104",
+        old_code: "L007",
         name: "ratio-denominator-often-zero",
         rationale: "a filtered or windowed denominator is zero for many units, so the ratio rests on few of them",
     },
     Rule {
-        code: "L008",
+        code: "Q103",
+        old_code: "L008",
         name: "sum-without-winsorize",
         rationale: "sums of values (revenue, time) are usually heavy-tailed; a few extreme units can decide the result",
     },
     Rule {
-        code: "L009",
+        code: "Q105",
+        old_code: "L009",
         name: "integer-division",
         rationale: "dividing by a whole number truncates on PostgreSQL, Redshift and Trino when the column is an integer (amount_cents / 100 gives 12, not 12.34), but not on DuckDB, Spark or BigQuery",
     },
@@ -121,13 +136,13 @@ pub fn lint(raw: &RawCatalog, catalog: &Catalog) -> Vec<Diagnostic> {
     }
     for (i, (item, m)) in raw.metrics.iter().zip(&catalog.metrics).enumerate() {
         if m.description.is_none() {
-            out.push(warn("L001", format!("metric `{}` has no description", m.name)).at(Some(item.span())));
+            out.push(warn("Q101", format!("metric `{}` has no description", m.name)).at(Some(item.span())));
         }
         if m.owner.is_none() {
-            out.push(warn("L002", format!("metric `{}` has no owner", m.name)).at(Some(item.span())));
+            out.push(warn("Q102", format!("metric `{}` has no owner", m.name)).at(Some(item.span())));
         }
         if !used[i] {
-            out.push(warn("L004", format!("no experiment uses metric `{}`", m.name)).at(Some(item.span())));
+            out.push(warn("Q301", format!("no experiment uses metric `{}`", m.name)).at(Some(item.span())));
         }
         if let MetricKind::Events {
             aggregation: Aggregation::Sum,
@@ -137,7 +152,7 @@ pub fn lint(raw: &RawCatalog, catalog: &Catalog) -> Vec<Diagnostic> {
             && used[i]
         {
             out.push(
-                warn("L008", format!("sum metric `{}` has no `winsorize`", m.name))
+                warn("Q103", format!("sum metric `{}` has no `winsorize`", m.name))
                     .at(item.key_span("per_unit"))
                     .hint("add e.g. `winsorize: 99.9%` after checking the tail of the per-unit values"),
             );
@@ -151,7 +166,7 @@ pub fn lint(raw: &RawCatalog, catalog: &Catalog) -> Vec<Diagnostic> {
                     let literal = &division[fixed.len()..];
                     out.push(
                         warn(
-                            "L009",
+                            "Q105",
                             format!("metric `{}` divides by a whole number: `{division}`", m.name),
                         )
                         .at(item.value_span(key))
@@ -168,7 +183,7 @@ pub fn lint(raw: &RawCatalog, catalog: &Catalog) -> Vec<Diagnostic> {
         {
             out.push(
                 warn(
-                    "L007",
+                    "Q104",
                     format!(
                         "ratio `{}` divides by `{}`, which is filtered or windowed",
                         m.name, catalog.metrics[denominator].name
@@ -182,7 +197,7 @@ pub fn lint(raw: &RawCatalog, catalog: &Catalog) -> Vec<Diagnostic> {
         let length = e.end.0 - e.start.0;
         if !e.metrics.iter().any(|(_, r)| *r == Role::Primary) {
             out.push(
-                warn("L006", format!("experiment `{}` has no primary metric", e.name)).at(Some(item.span())),
+                warn("Q203", format!("experiment `{}` has no primary metric", e.name)).at(Some(item.span())),
             );
         }
         for &(m, role) in &e.metrics {
@@ -190,7 +205,7 @@ pub fn lint(raw: &RawCatalog, catalog: &Catalog) -> Vec<Diagnostic> {
             if role == Role::Guardrail && metric.direction.is_none() {
                 out.push(
                     warn(
-                        "L005",
+                        "Q202",
                         format!("guardrail `{}` of `{}` has no direction", metric.name, e.name),
                     )
                     .at(Some(item.value_span("guardrails").unwrap_or_else(|| item.span())))
@@ -205,7 +220,7 @@ pub fn lint(raw: &RawCatalog, catalog: &Catalog) -> Vec<Diagnostic> {
             {
                 out.push(
                     warn(
-                        "L003",
+                        "Q201",
                         format!(
                             "metric `{}` has a window of {}, longer than experiment `{}` ({})",
                             metric.name,
@@ -231,7 +246,7 @@ pub fn apply_levels(diags: Vec<Diagnostic>, levels: &[(String, String)]) -> Vec<
             let name = rule(d.code).name;
             match levels
                 .iter()
-                .find(|(k, _)| k == d.code || k == name)
+                .find(|(k, _)| k == d.code || k == name || k == rule(d.code).old_code)
                 .map(|(_, v)| v.as_str())
             {
                 Some("off") => None,

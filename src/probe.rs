@@ -571,7 +571,11 @@ impl Prober<'_> {
                             exp.name, log.name, log.experiment, exp.key
                         ),
                     )
-                    .at(Some(at(item, "key")))
+                    .at(Some(if item.value.logged_as.is_some() || item.value.key.is_none() {
+                        at(item, "logged_as")
+                    } else {
+                        at(item, "key")
+                    }))
                     .hint(hint),
                 );
                 continue;

@@ -277,6 +277,21 @@ fn check_lint_levels(raw_ws: &RawWorkspace, levels: &[(String, String)], diags: 
     for (i, (key, level)) in levels.iter().enumerate() {
         let known = crate::lint::RULES.iter().any(|r| r.code == key || r.name == key);
         let span = raw_ws.value_span(&[Seg::Key("lint".into())]);
+        if let Some(r) = crate::lint::RULES.iter().find(|r| r.old_code == key) {
+            diags.push(
+                Diagnostic::warning(
+                    "W005",
+                    format!("lint code `{key}` is now `{}` ({})", r.code, r.name),
+                )
+                .at(span.clone())
+                .hint(format!(
+                    "write `{}` or `{}`; `{key}` is still read for now",
+                    r.name, r.code
+                )),
+            );
+            continue_level_check(key, level, i, span, diags);
+            continue;
+        }
         if !known {
             diags.push(
                 Diagnostic::error("E003", format!("unknown lint rule `{key}`"))
@@ -291,16 +306,27 @@ fn check_lint_levels(raw_ws: &RawWorkspace, levels: &[(String, String)], diags: 
                     )),
             );
         }
-        if !matches!(level.as_str(), "off" | "warning" | "error") {
-            diags.push(
-                Diagnostic::error(
-                    "E017",
-                    format!("lint level `{level}` for `{key}` (entry {})", i + 1),
-                )
-                .at(span)
-                .hint("use off, warning or error"),
-            );
-        }
+        continue_level_check(key, level, i, span, diags);
+    }
+}
+
+/// The level of one `lint:` entry must be off, warning or error.
+fn continue_level_check(
+    key: &str,
+    level: &str,
+    i: usize,
+    span: Option<crate::source::Span>,
+    diags: &mut Vec<Diagnostic>,
+) {
+    if !matches!(level, "off" | "warning" | "error") {
+        diags.push(
+            Diagnostic::error(
+                "E017",
+                format!("lint level `{level}` for `{key}` (entry {})", i + 1),
+            )
+            .at(span)
+            .hint("use off, warning or error"),
+        );
     }
 }
 

@@ -193,7 +193,7 @@ fn lint_warnings_are_reported_configurable_and_deniable() {
     let out = plumb(ws.path(), &["check"]);
     assert_eq!(out.status.code(), Some(0));
     let stderr = text(&out.stderr);
-    for code in ["L001", "L002", "L004"] {
+    for code in ["Q101", "Q102", "Q301"] {
         assert!(
             stderr.contains(&format!("warning[{code}]")),
             "{code} missing:\n{stderr}"
@@ -212,14 +212,14 @@ fn lint_warnings_are_reported_configurable_and_deniable() {
     // Severities from plumb.yaml: switch rules off (by code or name) or make them errors.
     std::fs::write(
         ws.path().join("plumb.yaml"),
-        "catalog: metrics\nlint:\n  L001: off\n  metric-without-owner: off\n  unused-metric: off\n",
+        "catalog: metrics\nlint:\n  Q101: off\n  metric-without-owner: off\n  unused-metric: off\n",
     )
     .unwrap();
     let out = plumb(ws.path(), &["check", "--deny", "warnings"]);
     assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
     std::fs::write(
         ws.path().join("plumb.yaml"),
-        "catalog: metrics\nlint:\n  L004: error\n",
+        "catalog: metrics\nlint:\n  Q301: error\n",
     )
     .unwrap();
     let out = plumb(ws.path(), &["check", "--format", "json"]);
@@ -232,7 +232,21 @@ fn lint_warnings_are_reported_configurable_and_deniable() {
         .filter(|d| d["severity"] == "error")
         .collect();
     assert_eq!(errors.len(), 1);
-    assert_eq!(errors[0]["code"], "L004");
+    assert_eq!(errors[0]["code"], "Q301");
+    // The old code still works, with a warning naming the new one.
+    std::fs::write(
+        ws.path().join("plumb.yaml"),
+        "catalog: metrics\nlint:\n  L004: error\n",
+    )
+    .unwrap();
+    let out = plumb(ws.path(), &["check", "--format", "json"]);
+    assert_eq!(out.status.code(), Some(1));
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let shown = serde_json::to_string(&v).unwrap();
+    assert!(
+        shown.contains("lint code `L004` is now `Q301` (unused-metric)"),
+        "{shown}"
+    );
     std::fs::write(
         ws.path().join("plumb.yaml"),
         "catalog: metrics\nlint:\n  L999: off\n",
@@ -260,7 +274,7 @@ fn division_by_a_whole_number_is_linted_with_the_fix() {
         .as_array()
         .unwrap()
         .iter()
-        .filter(|d| d["code"] == "L009")
+        .filter(|d| d["code"] == "Q105")
         .collect();
     // Once in `of`, once in `where`; `/ 100.0` is a decimal division and not flagged.
     assert_eq!(l009.len(), 2, "{}", text(&out.stdout));
@@ -326,7 +340,7 @@ fn schema_lists_exactly_the_keys_the_loader_accepts() {
 /// a located catalog error (exit 1) naming the experiment's `segments:`, not an internal one.
 #[test]
 fn segments_on_a_dialect_without_grouping_sets_is_a_located_error() {
-    let body = "segments:\n  - name: device\n    from_exposure: device\n\nexperiments:\n  - name: sliced\n    exposures: assignments\n    control: a\n    split: {a: 1, b: 1}\n    start: 2026-03-02\n    end: 2026-03-09\n    primary: [orders]\n    segments: [device]\n  - name: plain\n    exposures: assignments\n    control: a\n    split: {a: 1, b: 1}\n    start: 2026-03-02\n    end: 2026-03-09\n    primary: [orders]\n";
+    let body = "segments:\n  - name: device\n    from_exposure: device\n\nexperiments:\n  - name: sliced\n    exposure_log: assignments\n    control: a\n    split: {a: 1, b: 1}\n    start: 2026-03-02\n    end: 2026-03-09\n    primary: [orders]\n    segments: [device]\n  - name: plain\n    exposure_log: assignments\n    control: a\n    split: {a: 1, b: 1}\n    start: 2026-03-02\n    end: 2026-03-09\n    primary: [orders]\n";
     let ws = workspace(&[("sliced.yaml", body)]);
     let flat = ws.path().join("dialects/flat");
     std::fs::create_dir_all(&flat).unwrap();
@@ -680,4 +694,42 @@ fn color_is_decided_by_the_flag_and_no_color() {
         .output()
         .unwrap();
     assert!(text(&forced.stdout).contains('\x1b'));
+}
+
+#[test]
+fn renamed_experiment_keys_are_read_with_a_warning_naming_the_new_key() {
+    let demo = small_demo(5, 300);
+    let catalog = demo.path().join("metrics/plant_shop.yaml");
+    let new = std::fs::read_to_string(&catalog).unwrap();
+    assert!(new.contains("exposure_log: assignments") && new.contains("logged_as: one-page-checkout"));
+    let sql_new = text(&plumb(demo.path(), &["sql", "one_page_checkout"]).stdout);
+    let old = new
+        .replace("exposure_log: assignments", "exposures: assignments")
+        .replace("logged_as: ", "key: ");
+    std::fs::write(&catalog, &old).unwrap();
+    let out = plumb(demo.path(), &["check"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let stderr = text(&out.stderr);
+    assert!(
+        stderr.contains("warning[W005]: `exposures:` is now called `exposure_log:`"),
+        "{stderr}"
+    );
+    assert!(stderr.contains("`key:` is now called `logged_as:`"), "{stderr}");
+    assert_eq!(
+        text(&plumb(demo.path(), &["sql", "one_page_checkout"]).stdout),
+        sql_new
+    );
+    // Both spellings at once are an error.
+    std::fs::write(
+        &catalog,
+        new.replacen(
+            "exposure_log: assignments",
+            "exposure_log: assignments\n    exposures: assignments",
+            1,
+        ),
+    )
+    .unwrap();
+    let out = plumb(demo.path(), &["check"]);
+    assert_eq!(out.status.code(), Some(1));
+    assert!(text(&out.stderr).contains("both `exposures` and `exposure_log` are set"));
 }

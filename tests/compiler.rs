@@ -510,7 +510,7 @@ fn one_scan_per_event_table_with_twenty_metrics() {
         names.push(format!("m{i}"));
     }
     let catalog = format!(
-        "units:\n  - name: user\nevent_tables:\n  - name: purchases\n    unit: user\n    table: purchases\n    id: user_id\n    time: at\n  - name: sessions\n    unit: user\n    table: sessions\n    id: user_id\n    time: started_at\nexposure_logs:\n  - name: exposures\n    unit: user\n    table: exposures\n    id: user_id\n    time: at\n    experiment: exp\n    arm: variant\nsegments:\n  - name: platform\n    from_exposure: platform\nmetrics:\n{metrics}experiments:\n  - name: wide\n    exposures: exposures\n    key: k\n    control: a\n    split: {{a: 1, b: 1}}\n    start: 2026-04-01\n    end: 2026-04-15\n    covariate_window: 7d\n    segments: [platform]\n    primary: [{}]\n",
+        "units:\n  - name: user\nevent_tables:\n  - name: purchases\n    unit: user\n    table: purchases\n    id: user_id\n    time: at\n  - name: sessions\n    unit: user\n    table: sessions\n    id: user_id\n    time: started_at\nexposure_logs:\n  - name: exposures\n    unit: user\n    table: exposures\n    id: user_id\n    time: at\n    experiment: exp\n    arm: variant\nsegments:\n  - name: platform\n    from_exposure: platform\nmetrics:\n{metrics}experiments:\n  - name: wide\n    exposure_log: exposures\n    logged_as: k\n    control: a\n    split: {{a: 1, b: 1}}\n    start: 2026-04-01\n    end: 2026-04-15\n    covariate_window: 7d\n    segments: [platform]\n    primary: [{}]\n",
         names.join(", ")
     );
     let mut sources = SourceMap::new();
@@ -567,7 +567,7 @@ fn one_scan_per_event_table_with_twenty_metrics() {
 fn timestamps_with_and_without_zone_give_the_same_numbers() {
     // The same instants written in UTC without a zone and with a +02:00 offset.
     let dir = tempfile::tempdir().unwrap();
-    let catalog = "units:\n  - name: user\nevent_tables:\n  - name: ev\n    unit: user\n    table: ev\n    id: user_id\n    time: at\nexposure_logs:\n  - name: ex\n    unit: user\n    table: ex\n    id: user_id\n    time: at\n    experiment: exp\n    arm: arm\nmetrics:\n  - name: n\n    events: ev\n    per_unit: count\n    window: [0h, 2h]\nexperiments:\n  - name: e\n    exposures: ex\n    key: e\n    control: a\n    split: {a: 1, b: 1}\n    start: 2026-04-01T00:00:00Z\n    end: 2026-04-02T00:00:00Z\n    primary: [n]\n";
+    let catalog = "units:\n  - name: user\nevent_tables:\n  - name: ev\n    unit: user\n    table: ev\n    id: user_id\n    time: at\nexposure_logs:\n  - name: ex\n    unit: user\n    table: ex\n    id: user_id\n    time: at\n    experiment: exp\n    arm: arm\nmetrics:\n  - name: n\n    events: ev\n    per_unit: count\n    window: [0h, 2h]\nexperiments:\n  - name: e\n    exposure_log: ex\n    logged_as: e\n    control: a\n    split: {a: 1, b: 1}\n    start: 2026-04-01T00:00:00Z\n    end: 2026-04-02T00:00:00Z\n    primary: [n]\n";
     let mut sources = SourceMap::new();
     let (raw, _) = plumb::load::load_catalog_texts(&[("tz.yaml", catalog)], &mut sources);
     let catalog = plumb::resolve::resolve(&sources, &raw).unwrap();
@@ -680,7 +680,7 @@ fn nist_variance_numerics_through_duckdb() {
         }
         std::fs::write(dir.path().join("ex.csv"), ex).unwrap();
         std::fs::write(dir.path().join("ev.csv"), ev).unwrap();
-        let catalog = "units:\n  - name: u\nevent_tables:\n  - name: ev\n    unit: u\n    table: ev\n    id: u\n    time: at\nexposure_logs:\n  - name: ex\n    unit: u\n    table: ex\n    id: u\n    time: at\n    experiment: exp\n    arm: arm\nmetrics:\n  - name: y\n    events: ev\n    per_unit: sum\n    of: \"CAST(y AS DOUBLE)\"\nexperiments:\n  - name: e\n    exposures: ex\n    control: a\n    split: {a: 1, b: 1}\n    start: 2026-01-01\n    end: 2026-01-02\n    primary: [y]\n";
+        let catalog = "units:\n  - name: u\nevent_tables:\n  - name: ev\n    unit: u\n    table: ev\n    id: u\n    time: at\nexposure_logs:\n  - name: ex\n    unit: u\n    table: ex\n    id: u\n    time: at\n    experiment: exp\n    arm: arm\nmetrics:\n  - name: y\n    events: ev\n    per_unit: sum\n    of: \"CAST(y AS DOUBLE)\"\nexperiments:\n  - name: e\n    exposure_log: ex\n    control: a\n    split: {a: 1, b: 1}\n    start: 2026-01-01\n    end: 2026-01-02\n    primary: [y]\n";
         let mut sources = SourceMap::new();
         let (raw, _) = plumb::load::load_catalog_texts(&[("nist.yaml", catalog)], &mut sources);
         let catalog = plumb::resolve::resolve(&sources, &raw).unwrap();

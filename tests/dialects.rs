@@ -148,8 +148,8 @@ metrics:
     per_unit: count
 experiments:
   - name: hostile
-    exposures: exposures
-    key: "x'; DROP TABLE z; --"
+    exposure_log: exposures
+    logged_as: "x'; DROP TABLE z; --"
     control: "c'--"
     split: {"c'--": 1, "t\"; --": 1}
     start: 2026-01-01
@@ -204,8 +204,8 @@ metrics:
       status = 'x\' OR status = ' OR 4242 = 4242 --' OR "c\" = 'it''s' OR page = E'a\'b'
 experiments:
   - name: hostile
-    exposures: exposures
-    key: 'k\'
+    exposure_log: exposures
+    logged_as: 'k\'
     control: c
     split: {c: 1, t: 1}
     start: 2026-01-01

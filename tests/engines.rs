@@ -102,8 +102,8 @@ metrics:
     ratio: [orders, page_views]
 experiments:
   - name: engine_check
-    exposures: assignments
-    key: one-page-checkout
+    exposure_log: assignments
+    logged_as: one-page-checkout
     control: control
     split: {control: 50, treatment: 50}
     start: 2026-03-02T00:00:00Z

@@ -438,7 +438,7 @@ fn cases() -> Vec<Case> {
         ),
         case(
             "unquoted number key",
-            vec![replace("key: one-page-checkout", "key: 1.10")],
+            vec![replace("logged_as: one-page-checkout", "logged_as: 1.10")],
             "check",
             1,
             "YAML reads it as the number 1.1",
@@ -563,14 +563,20 @@ fn cases() -> Vec<Case> {
         ),
         case(
             "experiment key never logged",
-            vec![replace("key: one-page-checkout", "key: one-page-chekout")],
+            vec![replace(
+                "logged_as: one-page-checkout",
+                "logged_as: one-page-chekout",
+            )],
             "check",
             0,
             "1 warning",
         ),
         case(
             "experiment key never logged is denied in CI",
-            vec![replace("key: one-page-checkout", "key: one-page-chekout")],
+            vec![replace(
+                "logged_as: one-page-checkout",
+                "logged_as: one-page-chekout",
+            )],
             "check --deny warnings",
             1,
             "W004",

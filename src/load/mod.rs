@@ -369,6 +369,7 @@ pub fn parse_catalog_file(
                 continue;
             }
             check_keys(file, item_node, keys, &format!("an item of `{key}`"), diags);
+            check_renamed(file, item_node, key, diags);
             let Some(item_value) = values.get(i).cloned() else {
                 continue;
             };
@@ -412,6 +413,37 @@ fn check_keys(file: FileId, node: &Node, allowed: &[&str], what: &str, diags: &m
             None => d.hint(format!("allowed keys: {}", allowed.join(", "))),
         };
         diags.push(d);
+    }
+}
+
+/// Old spellings of renamed keys: a warning naming the new key, or an error when an item has
+/// both spellings.
+fn check_renamed(file: FileId, node: &Node, list: &str, diags: &mut Vec<Diagnostic>) {
+    let NodeKind::Map(entries) = &node.kind else {
+        return;
+    };
+    let has = |k: &str| entries.iter().find(|(key, _, _)| key == k);
+    for (_, old, new) in syntax::RENAMED.iter().filter(|(l, _, _)| *l == list) {
+        let Some((_, range, _)) = has(old) else { continue };
+        let span = Some(Span::new(file, range.clone()));
+        if has(new).is_some() {
+            diags.push(
+                Diagnostic::error(
+                    "E017",
+                    format!("both `{old}` and `{new}` are set; `{old}` is the old name of `{new}`"),
+                )
+                .at(span)
+                .hint(format!("remove `{old}`")),
+            );
+        } else {
+            diags.push(
+                Diagnostic::warning("W005", format!("`{old}:` is now called `{new}:`"))
+                    .at(span)
+                    .hint(format!(
+                        "rename the key to `{new}`; `{old}` is still read for now"
+                    )),
+            );
+        }
     }
 }
 

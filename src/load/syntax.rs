@@ -201,7 +201,14 @@ pub struct Metric {
 pub struct Experiment {
     pub name: Option<String>,
     pub description: Option<String>,
+    /// The exposure log recording who saw which arm.
+    pub exposure_log: Option<String>,
+    /// Deprecated spelling of `exposure_log` (accepted with warning W005).
     pub exposures: Option<String>,
+    /// The value the exposure log's experiment column holds for this experiment (default: the
+    /// experiment's name).
+    pub logged_as: Option<Scalar>,
+    /// Deprecated spelling of `logged_as` (accepted with warning W005).
     pub key: Option<Scalar>,
     pub control: Option<String>,
     pub split: Option<OrderedMap<f64>>,
@@ -213,6 +220,25 @@ pub struct Experiment {
     pub covariate_window: Option<Scalar>,
     pub segments: Option<Vec<String>>,
     pub mde: Option<Scalar>,
+}
+
+/// Keys renamed in a catalog item: (list, old spelling, new spelling). The old spelling is
+/// still accepted, with warning W005 naming the new one; both together are an error.
+pub const RENAMED: &[(&str, &str, &str)] = &[
+    ("experiments", "exposures", "exposure_log"),
+    ("experiments", "key", "logged_as"),
+];
+
+impl Experiment {
+    /// `exposure_log`, or its deprecated spelling.
+    pub fn log(&self) -> Option<&String> {
+        self.exposure_log.as_ref().or(self.exposures.as_ref())
+    }
+
+    /// `logged_as`, or its deprecated spelling.
+    pub fn logged(&self) -> Option<&Scalar> {
+        self.logged_as.as_ref().or(self.key.as_ref())
+    }
 }
 
 /// The top-level lists a catalog file may hold, with the keys each item accepts.
@@ -282,7 +308,9 @@ pub const KINDS: &[(&str, &[&str])] = &[
         &[
             "name",
             "description",
+            "exposure_log",
             "exposures",
+            "logged_as",
             "key",
             "control",
             "split",

@@ -851,16 +851,26 @@ impl Resolver<'_> {
     ) -> Option<ir::Experiment> {
         let v = &item.value;
         let name = v.name.clone().unwrap_or_default();
+        let log_key = if v.exposure_log.is_none() && v.exposures.is_some() {
+            "exposures"
+        } else {
+            "exposure_log"
+        };
         let exposures = self
-            .required(item, &v.exposures, "exposures", "an experiment", "assignments")
-            .and_then(|l| self.reference(logs, l, "exposure log", item.value_span("exposures")));
+            .required(item, &v.log().cloned(), log_key, "an experiment", "assignments")
+            .and_then(|l| self.reference(logs, l, "exposure log", item.value_span(log_key)));
         let control = self
             .required(item, &v.control, "control", "an experiment", "control")
             .map(str::to_string);
 
         // Labels are text as written: YAML reads `key: 1.10` or an arm `007` as a number, which
         // would reach the SQL as '1.1' and '7' and match nothing.
-        self.label_as_written(item, "key", v.key.as_ref().map(|k| k.0.as_str()));
+        let logged_key = if v.logged_as.is_none() && v.key.is_some() {
+            "key"
+        } else {
+            "logged_as"
+        };
+        self.label_as_written(item, logged_key, v.logged().map(|k| k.0.as_str()));
         if let (Some(split), Some(node)) = (&v.split, item.node.get("split"))
             && let crate::load::yaml::NodeKind::Map(entries) = &node.kind
         {
@@ -1043,11 +1053,7 @@ impl Resolver<'_> {
                 segment_ids.push(id);
             }
         }
-        let key = v
-            .key
-            .as_ref()
-            .map(|k| k.0.clone())
-            .unwrap_or_else(|| name.clone());
+        let key = v.logged().map(|k| k.0.clone()).unwrap_or_else(|| name.clone());
         let mde = v
             .mde
             .as_ref()
