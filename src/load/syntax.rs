@@ -90,8 +90,11 @@ impl<'de, V: Deserialize<'de>> Deserialize<'de> for OrderedMap<V> {
 #[derive(Debug, Clone, Default, Deserialize, Serialize, JsonSchema)]
 #[schemars(deny_unknown_fields)]
 pub struct WorkspaceFile {
+    /// Folder (relative to plumb.yaml) holding the catalog's YAML files.
     pub catalog: Option<String>,
+    /// Default SQL dialect of `plumb sql` and `check` (default: duckdb).
     pub dialect: Option<String>,
+    /// The local data the embedded engine reads: tables from files, or a DuckDB database.
     pub local: Option<LocalData>,
     /// Lint severities: rule code or name -> `off`, `warning` or `error`.
     pub lint: Option<OrderedMap<String>>,
@@ -105,7 +108,9 @@ pub const LOCAL_KEYS: &[&str] = &["database", "tables", "threads", "memory_limit
 #[derive(Debug, Clone, Default, Deserialize, Serialize, JsonSchema)]
 #[schemars(deny_unknown_fields)]
 pub struct LocalData {
+    /// A DuckDB database file whose tables are the local data.
     pub database: Option<String>,
+    /// Table name -> CSV, Parquet or JSON file (or glob such as `data/orders/*.parquet`).
     pub tables: Option<OrderedMap<String>>,
     /// Worker threads of the local engine (default: every core). Results are the same for
     /// any value.
@@ -120,7 +125,9 @@ pub struct LocalData {
 #[derive(Debug, Clone, Deserialize, Serialize, JsonSchema)]
 #[schemars(deny_unknown_fields)]
 pub struct Unit {
+    /// The unit's name (snake_case), e.g. `shopper`.
     pub name: Option<String>,
+    /// What one unit is, in a sentence.
     pub description: Option<String>,
     /// What makes a unit active in a report period: `{events: visits}`.
     pub active: Option<Active>,
@@ -129,19 +136,28 @@ pub struct Unit {
 #[derive(Debug, Clone, Deserialize, Serialize, JsonSchema)]
 #[schemars(deny_unknown_fields)]
 pub struct Active {
+    /// Event table whose rows make a unit active in a report period.
     pub events: Option<String>,
 }
 
 #[derive(Debug, Clone, Deserialize, Serialize, JsonSchema)]
 #[schemars(deny_unknown_fields)]
 pub struct EventTable {
+    /// The event table's name (snake_case), used by metrics' `events:`.
     pub name: Option<String>,
+    /// What one row is.
     pub description: Option<String>,
+    /// The unit each row belongs to.
     pub unit: Option<String>,
+    /// The warehouse table (`schema.table`) holding the rows; or give `sql`.
     pub table: Option<String>,
+    /// A read-only query giving the rows, instead of `table`.
     pub sql: Option<String>,
+    /// Column holding the unit's id.
     pub id: Option<String>,
+    /// Column holding the event's timestamp (UTC when without a zone).
     pub time: Option<String>,
+    /// SQL condition every row must meet (e.g. `not is_test`).
     #[serde(rename = "where")]
     pub where_: Option<String>,
     /// Optional list of the table's columns; SQL fragments are checked against it.
@@ -151,44 +167,72 @@ pub struct EventTable {
 #[derive(Debug, Clone, Deserialize, Serialize, JsonSchema)]
 #[schemars(deny_unknown_fields)]
 pub struct ExposureLog {
+    /// The exposure log's name, used by experiments' `exposure_log:`.
     pub name: Option<String>,
+    /// What one row records.
     pub description: Option<String>,
+    /// The unit that is exposed (randomised).
     pub unit: Option<String>,
+    /// The warehouse table holding the exposure rows; or give `sql`.
     pub table: Option<String>,
+    /// A read-only query giving the exposure rows, instead of `table`.
     pub sql: Option<String>,
+    /// Column holding the unit's id.
     pub id: Option<String>,
+    /// Column holding the exposure timestamp.
     pub time: Option<String>,
+    /// Column naming the experiment (matched against each experiment's `logged_as`).
     pub experiment: Option<String>,
+    /// Column naming the arm (matched against each experiment's `split`).
     pub arm: Option<String>,
 }
 
 #[derive(Debug, Clone, Deserialize, Serialize, JsonSchema)]
 #[schemars(deny_unknown_fields)]
 pub struct Segment {
+    /// The segment's name, used by experiments' `segments:` and `--by`.
     pub name: Option<String>,
+    /// What the segment splits units by.
     pub description: Option<String>,
+    /// The unit the attribute belongs to.
     pub unit: Option<String>,
+    /// Table holding the attribute, one row per unit (or per unit and time with `time`).
     pub table: Option<String>,
+    /// Column of `table` holding the unit's id.
     pub id: Option<String>,
+    /// SQL giving the segment's value from a row of `table`.
     pub value: Option<String>,
+    /// Column of `table` with the time a value starts to hold (the value at first exposure is used).
     pub time: Option<String>,
+    /// Instead of a table: a column of the exposure log, as recorded at first exposure.
     pub from_exposure: Option<String>,
 }
 
 #[derive(Debug, Clone, Deserialize, Serialize, JsonSchema)]
 #[schemars(deny_unknown_fields)]
 pub struct Metric {
+    /// The metric's name (snake_case).
     pub name: Option<String>,
+    /// What one unit's value means.
     pub description: Option<String>,
+    /// Who answers for the definition (a team).
     pub owner: Option<String>,
+    /// Event table the metric aggregates.
     pub events: Option<String>,
+    /// How a unit's events become one number: count, sum, distinct, any, min, max or at_least.
     pub per_unit: Option<String>,
+    /// SQL value aggregated by sum, distinct, min and max (e.g. `amount_cents / 100.0`).
     pub of: Option<String>,
+    /// SQL condition on the events that count.
     #[serde(rename = "where")]
     pub where_: Option<String>,
+    /// `[start, end]` relative to first exposure, half-open, e.g. `[0d, 7d]` (default: until the experiment's end).
     pub window: Option<Vec<Scalar>>,
+    /// Cap per-unit values: a percentile of exposed units (`99.9%`) or an absolute value (`500`).
     pub winsorize: Option<Scalar>,
+    /// With `per_unit: at_least`: the number of events a unit needs for a 1.
     pub at_least: Option<u64>,
+    /// `[numerator, denominator]`: a ratio of two metrics' sums over units.
     pub ratio: Option<Vec<String>>,
     /// `increase` or `decrease`: which way is good. Used by guardrails.
     pub direction: Option<String>,
@@ -199,7 +243,9 @@ pub struct Metric {
 #[derive(Debug, Clone, Deserialize, Serialize, JsonSchema)]
 #[schemars(deny_unknown_fields)]
 pub struct Experiment {
+    /// The experiment's name (snake_case), used by `plumb analyze NAME`.
     pub name: Option<String>,
+    /// What is being tried, and why.
     pub description: Option<String>,
     /// The exposure log recording who saw which arm.
     pub exposure_log: Option<String>,
@@ -210,15 +256,25 @@ pub struct Experiment {
     pub logged_as: Option<Scalar>,
     /// Deprecated spelling of `logged_as` (accepted with warning W005).
     pub key: Option<Scalar>,
+    /// The control arm (one of `split`).
     pub control: Option<String>,
+    /// Arm -> planned share, e.g. `{control: 50, treatment: 50}`; arms as the log records them.
     pub split: Option<OrderedMap<f64>>,
+    /// Start (UTC), e.g. `2026-03-02`.
     pub start: Option<Scalar>,
+    /// End and data cut-off (UTC, exclusive).
     pub end: Option<Scalar>,
+    /// Metrics that decide the experiment (one Holm family).
     pub primary: Option<Vec<String>>,
+    /// Metrics to learn from (Benjamini-Hochberg family).
     pub secondary: Option<Vec<String>>,
+    /// Metrics that must not get worse (unadjusted; need `direction`).
     pub guardrails: Option<Vec<String>>,
+    /// Pre-exposure window for CUPED covariates, e.g. `14d`.
     pub covariate_window: Option<Scalar>,
+    /// Segments to slice the readout by.
     pub segments: Option<Vec<String>>,
+    /// Default smallest relative change worth detecting for its metrics, e.g. `2%`.
     pub mde: Option<Scalar>,
 }
 
@@ -331,19 +387,209 @@ pub const KINDS: &[(&str, &[&str])] = &[
 #[derive(Debug, Clone, Default, Deserialize, Serialize, JsonSchema)]
 #[schemars(deny_unknown_fields)]
 pub struct CatalogFile {
+    /// What experiments randomise and metrics count per: shoppers, accounts, sessions.
     pub units: Option<Vec<Unit>>,
+    /// Tables of timestamped events of a unit (orders, page views).
     pub event_tables: Option<Vec<EventTable>>,
+    /// Tables recording which unit saw which arm of which experiment, and when.
     pub exposure_logs: Option<Vec<ExposureLog>>,
+    /// Ways to slice units: an attribute from a table or a column of the exposure log.
     pub segments: Option<Vec<Segment>>,
+    /// Per-unit numbers computed from events, and ratios of them.
     pub metrics: Option<Vec<Metric>>,
+    /// Experiments: exposure log, arms and split, dates, metrics by role.
     pub experiments: Option<Vec<Experiment>>,
 }
 
-/// The JSON Schema of catalog files, for editors and YAML language servers.
+/// `per_unit` values the resolver accepts (the schema lists the same ones).
+pub const PER_UNIT: &[&str] = &["count", "sum", "distinct", "any", "min", "max", "at_least"];
+/// `direction` values.
+pub const DIRECTIONS: &[&str] = &["increase", "decrease"];
+
+/// Keys an item must have, per definition of the schema (beyond what `anyOf` rules add).
+const REQUIRED: &[(&str, &[&str])] = &[
+    ("Unit", &["name"]),
+    ("EventTable", &["name", "unit", "id", "time"]),
+    (
+        "ExposureLog",
+        &["name", "unit", "id", "time", "experiment", "arm"],
+    ),
+    ("Segment", &["name"]),
+    ("Metric", &["name"]),
+    ("Experiment", &["name", "control", "split", "start", "end"]),
+];
+
+/// Removes `null` from a property's allowed types: a key that is present needs a value.
+fn no_null(prop: &mut serde_json::Value) {
+    use serde_json::Value;
+    let Some(o) = prop.as_object_mut() else { return };
+    if let Some(Value::Array(types)) = o.get_mut("type") {
+        types.retain(|t| t != "null");
+        if types.len() == 1 {
+            let only = types[0].clone();
+            o.insert("type".into(), only);
+        }
+    }
+    if let Some(Value::Array(any)) = o.get("anyOf").cloned() {
+        let kept: Vec<Value> = any
+            .into_iter()
+            .filter(|s| s.get("type") != Some(&Value::from("null")))
+            .collect();
+        if kept.len() == 1 {
+            o.remove("anyOf");
+            if let Some(inner) = kept[0].as_object() {
+                for (k, v) in inner {
+                    o.entry(k.clone()).or_insert(v.clone());
+                }
+            }
+        } else {
+            o.insert("anyOf".into(), Value::Array(kept));
+        }
+    }
+}
+
+/// The JSON Schema of catalog files, for editors and YAML language servers: generated from the
+/// loader's own types (descriptions from their doc comments), then tightened with what serde
+/// cannot say: required keys, allowed values (`per_unit`, `direction`), no nulls, the
+/// alternatives `table`/`sql` and the deprecated spellings of renamed keys.
 pub fn catalog_schema() -> serde_json::Value {
+    use serde_json::{Value, json};
     let mut schema = schemars::schema_for!(CatalogFile).to_value();
-    if let Some(o) = schema.as_object_mut() {
-        o.insert("title".into(), "plumb catalog file".into());
+    let Some(root) = schema.as_object_mut() else {
+        return schema;
+    };
+    root.insert("title".into(), "plumb catalog file".into());
+    if let Some(Value::Object(props)) = root.get_mut("properties") {
+        for p in props.values_mut() {
+            no_null(p);
+        }
+    }
+    if let Some(Value::Object(defs)) = root.get_mut("$defs") {
+        for (name, def) in defs.iter_mut() {
+            let Some(def) = def.as_object_mut() else { continue };
+            if let Some(Value::Object(props)) = def.get_mut("properties") {
+                for p in props.values_mut() {
+                    no_null(p);
+                }
+                let mut set_enum = |key: &str, values: &[&str]| {
+                    if let Some(Value::Object(p)) = props.get_mut(key) {
+                        p.insert("enum".into(), json!(values));
+                    }
+                };
+                if name == "Metric" {
+                    set_enum("per_unit", PER_UNIT);
+                    set_enum("direction", DIRECTIONS);
+                }
+                if name == "Experiment" {
+                    for (list, old, new) in RENAMED {
+                        if *list == "experiments"
+                            && let Some(Value::Object(p)) = props.get_mut(*old)
+                        {
+                            p.insert("deprecated".into(), true.into());
+                            p.insert(
+                                "description".into(),
+                                format!("Old name of `{new}` (still read, with a warning).").into(),
+                            );
+                        }
+                    }
+                }
+            }
+            if let Some((_, keys)) = REQUIRED.iter().find(|(n, _)| n == name) {
+                def.insert("required".into(), json!(keys));
+            }
+            match name.as_str() {
+                "EventTable" | "ExposureLog" => {
+                    def.insert(
+                        "anyOf".into(),
+                        json!([{"required": ["table"]}, {"required": ["sql"]}]),
+                    );
+                }
+                "Experiment" => {
+                    def.insert(
+                        "anyOf".into(),
+                        json!([{"required": ["exposure_log"]}, {"required": ["exposures"]}]),
+                    );
+                }
+                _ => {}
+            }
+        }
     }
     schema
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use serde_json::Value;
+
+    fn properties(schema: &Value) -> Vec<(String, &Value)> {
+        let mut out: Vec<(String, &Value)> = schema["properties"]
+            .as_object()
+            .unwrap()
+            .iter()
+            .map(|(k, v)| (k.clone(), v))
+            .collect();
+        for (name, def) in schema["$defs"].as_object().unwrap() {
+            for (k, v) in def["properties"].as_object().into_iter().flatten() {
+                out.push((format!("{name}.{k}"), v));
+            }
+        }
+        out
+    }
+
+    /// Every key an editor can complete says what it is for, and none accepts null.
+    #[test]
+    fn every_schema_key_has_a_description_and_needs_a_value() {
+        let schema = catalog_schema();
+        let props = properties(&schema);
+        assert!(props.len() > 50, "{}", props.len());
+        for (key, p) in props {
+            let d = p["description"].as_str().unwrap_or("");
+            assert!(d.len() > 10, "{key} has no description");
+            let text = p.to_string();
+            assert!(!text.contains("\"null\""), "{key} accepts null: {text}");
+        }
+    }
+
+    /// The schema lists the values the loader accepts, so an editor flags `per_unit: cnt`; the
+    /// keys the resolver requires are required; the syntax keys the loader allows are exactly
+    /// the schema's properties.
+    #[test]
+    fn schema_lists_allowed_values_required_keys_and_the_loaders_keys() {
+        let schema = catalog_schema();
+        let defs = &schema["$defs"];
+        assert_eq!(
+            defs["Metric"]["properties"]["per_unit"]["enum"],
+            serde_json::json!(PER_UNIT)
+        );
+        assert_eq!(
+            defs["Metric"]["properties"]["direction"]["enum"],
+            serde_json::json!(DIRECTIONS)
+        );
+        assert!(!PER_UNIT.contains(&"cnt"));
+        assert_eq!(
+            defs["Experiment"]["required"],
+            serde_json::json!(["name", "control", "split", "start", "end"])
+        );
+        assert_eq!(defs["Experiment"]["properties"]["exposures"]["deprecated"], true);
+        for (list, def) in [
+            ("units", "Unit"),
+            ("event_tables", "EventTable"),
+            ("exposure_logs", "ExposureLog"),
+            ("segments", "Segment"),
+            ("metrics", "Metric"),
+            ("experiments", "Experiment"),
+        ] {
+            let mut in_schema: Vec<&str> = defs[def]["properties"]
+                .as_object()
+                .unwrap()
+                .keys()
+                .map(String::as_str)
+                .collect();
+            let mut allowed: Vec<&str> = KINDS.iter().find(|(k, _)| *k == list).unwrap().1.to_vec();
+            in_schema.sort();
+            allowed.sort();
+            assert_eq!(in_schema, allowed, "{list}");
+        }
+    }
 }

@@ -771,12 +771,13 @@ impl Resolver<'_> {
                 }
             },
             Some(other) => {
-                let kinds = ["count", "sum", "distinct", "any", "min", "max", "at_least"];
+                let kinds = crate::load::syntax::PER_UNIT.iter().copied();
                 let mut d = Diagnostic::error("E017", format!("unknown per_unit `{other}`"))
                     .at(item.value_span("per_unit"));
-                d = d.hint(
-                    did_you_mean(other, kinds).unwrap_or_else(|| format!("use one of: {}", kinds.join(", "))),
-                );
+                d =
+                    d.hint(did_you_mean(other, kinds).unwrap_or_else(|| {
+                        format!("use one of: {}", crate::load::syntax::PER_UNIT.join(", "))
+                    }));
                 self.push(d);
                 None
             }
