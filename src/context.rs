@@ -91,9 +91,32 @@ pub struct Context {
     dialects: RefCell<BTreeMap<String, Rc<Dialect>>>,
     choice: EngineChoice,
     engine: RefCell<Option<Box<dyn Engine>>>,
+    /// Told about each step that may take a while (a query), for a status line.
+    progress: RefCell<Option<ProgressFn>>,
 }
 
+/// The progress callback of a [`Context`].
+type ProgressFn = Box<dyn FnMut(&str)>;
+
 impl Context {
+    /// Calls `f` with a short description before each step that may take a while (each query
+    /// the context runs). The library never prints; the command line shows these on stderr.
+    pub fn on_progress(&self, f: impl FnMut(&str) + 'static) {
+        *self.progress.borrow_mut() = Some(Box::new(f));
+    }
+
+    /// Who computes the numbers: `local DuckDB`, `PostgreSQL`.
+    pub fn engine_name(&self) -> &'static str {
+        self.choice.describe()
+    }
+
+    /// Reports a step to the progress callback, if any.
+    pub fn step(&self, what: &str) {
+        if let Some(f) = self.progress.borrow_mut().as_mut() {
+            f(what);
+        }
+    }
+
     /// Loads and resolves the workspace in `dir` (catalog errors: [`crate::ErrorKind::Catalog`]).
     pub fn open(dir: &Path, options: Options) -> Result<Context> {
         let mut sources = SourceMap::new();
@@ -137,6 +160,7 @@ impl Context {
                         dialects: RefCell::new(BTreeMap::new()),
                         choice: options.engine,
                         engine: RefCell::new(engine),
+                        progress: RefCell::new(None),
                     });
                 }
                 Ok(Context {
@@ -147,6 +171,7 @@ impl Context {
                     dialects: RefCell::new(BTreeMap::new()),
                     choice: options.engine,
                     engine: RefCell::new(engine),
+                    progress: RefCell::new(None),
                 })
             }
         }
@@ -328,6 +353,12 @@ impl Context {
                 options.max_metrics
             )));
         }
+        self.step(&format!(
+            "{}: readout query ({} metrics) on {}",
+            plan.experiment,
+            plan.metrics.len(),
+            self.choice.describe()
+        ));
         let rows = crate::timing::stage("readout query", || self.query_readout(&plan, &sql))?;
         let table = execute::stats_table(&plan, &rows)?;
         check_segment_sizes(&table, options.max_segment_values)?;
@@ -375,6 +406,7 @@ impl Context {
         }
         let days = (exp.end.0 - exp.start.0) as f64 / 86_400.0;
         let sql = compile::compile_totals(&plan, dialect)?;
+        self.step(&format!("{}: population totals for the impact", exp.name));
         let rows = crate::timing::stage("population totals query", || self.query(&sql))?;
         let [row] = rows.as_slice() else {
             return Err(Error::data(format!(
@@ -414,6 +446,7 @@ impl Context {
     /// A report computed on the context's engine.
     pub fn report(&self, plan: &ReportPlan) -> Result<Vec<crate::report::ReportRow>> {
         let sql = compile::compile_report(plan, &*self.engine_dialect()?)?;
+        self.step("report query");
         crate::report::assemble(plan, &self.query(&sql)?)
     }
 
@@ -449,6 +482,7 @@ impl Context {
     ) -> Result<History> {
         let plan = crate::plan::plan_history(self.catalog(), metric, log, start, end);
         let sql = compile::compile_plan(&plan, &*self.engine_dialect()?)?;
+        self.step("history query");
         let table = execute::stats_table(&plan, &self.query_readout(&plan, &sql)?)?;
         let row = table
             .rows

@@ -733,3 +733,27 @@ fn renamed_experiment_keys_are_read_with_a_warning_naming_the_new_key() {
     assert_eq!(out.status.code(), Some(1));
     assert!(text(&out.stderr).contains("both `exposures` and `exposure_log` are set"));
 }
+
+/// Progress goes to a terminal only: under a pseudo-terminal (util-linux `script`) the status
+/// line names each query; on a pipe stderr stays empty.
+#[test]
+fn progress_is_shown_on_a_terminal_and_never_on_a_pipe() {
+    let demo = small_demo(3, 2000);
+    let ws = demo.path().to_str().unwrap();
+    let bin = env!("CARGO_BIN_EXE_plumb");
+    let out = Command::new("script")
+        .args([
+            "-qec",
+            &format!("'{bin}' --workspace '{ws}' analyze one_page_checkout --color never > /dev/null"),
+            "/dev/null",
+        ])
+        .output()
+        .expect("util-linux `script` runs the command under a pseudo-terminal");
+    let shown = text(&out.stdout);
+    assert!(
+        shown.contains("one_page_checkout: readout query (7 metrics) on local DuckDB"),
+        "{shown}"
+    );
+    let piped = plumb(demo.path(), &["analyze", "one_page_checkout"]);
+    assert_eq!(text(&piped.stderr), "", "no status line on a pipe");
+}

@@ -121,10 +121,16 @@ pub fn run(global: &Global, s: Settings) -> Result<Outcome> {
         }
         Source::Engine(choice) => {
             let message = format!("running {} on {}", s.experiment, choice.describe());
+            let progress = super::Progress::start(&message);
             let ctx = global.open(choice)?;
+            progress.follow(&ctx);
             let id = ctx.experiment(&s.experiment)?;
             let by = ctx.segments(&s.by)?;
-            super::with_progress(&message, || ctx.readout(id, &by, s.options))?
+            let readout = ctx.readout(id, &by, s.options)?;
+            let mut out = readout_outcome(&readout, s.format, &s.style);
+            out.parts
+                .extend(progress.finish(&format!("analyzed {} on {}", s.experiment, ctx.engine_name())));
+            return Ok(out);
         }
     };
     Ok(readout_outcome(&readout, s.format, &s.style))

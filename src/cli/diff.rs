@@ -58,10 +58,14 @@ pub fn run(global: &Global, a: DiffArgs) -> Result<Outcome> {
         return Err(Error::catalog(sources, loaded.diagnostics));
     }
     // The resolved working tree: the head side by default, and the data for `--data`.
+    let progress = super::Progress::start("reading both revisions");
     let ctx = match a.head.is_none() || a.data {
         true => Some(global.open(EngineChoice::Local)?),
         false => None,
     };
+    if let Some(c) = &ctx {
+        progress.follow(c);
+    }
     let top = PathBuf::from(git(dir, &["rev-parse", "--show-toplevel"])?.trim());
     let prefix = git(dir, &["rev-parse", "--show-prefix"])?.trim().to_string();
     let catalog_rel = format!(
@@ -99,7 +103,10 @@ pub fn run(global: &Global, a: DiffArgs) -> Result<Outcome> {
         };
         let sql_diff = crate::diff::text_diff(&sql(&base_ir)?, &sql(&head_ir)?, &base_rev, &head_name);
         let numbers = match (&ctx, a.data) {
-            (Some(ctx), true) => numbers(ctx, &name, &base_ir, &head_ir)?,
+            (Some(ctx), true) => {
+                ctx.step(&format!("diff --data: {name}, before and after"));
+                numbers(ctx, &name, &base_ir, &head_ir)?
+            }
             _ => Vec::new(),
         };
         affected.push(Affected {
@@ -128,7 +135,18 @@ pub fn run(global: &Global, a: DiffArgs) -> Result<Outcome> {
     } else {
         0
     };
-    Ok(Outcome::stdout(text).with_code(code))
+    let mut out = Outcome::stdout(text).with_code(code);
+    out.parts.extend(progress.finish(&format!(
+        "compared {} affected experiment{}{}",
+        d.affected_experiments.len(),
+        if d.affected_experiments.len() == 1 {
+            ""
+        } else {
+            "s"
+        },
+        if a.data { " on the local data" } else { "" }
+    )));
+    Ok(out)
 }
 
 /// Readout rows of one experiment before and after, on the working tree's local data (one

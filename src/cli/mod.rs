@@ -334,18 +334,62 @@ fn emit(text: &str) {
 
 /// Runs `f` with a spinner on stderr when stderr is a terminal.
 fn with_progress<T>(message: &str, f: impl FnOnce() -> T) -> T {
-    use std::io::IsTerminal;
-    let bar = std::io::stderr().is_terminal().then(|| {
-        let bar = indicatif::ProgressBar::new_spinner();
-        bar.set_message(message.to_string());
-        bar.enable_steady_tick(std::time::Duration::from_millis(100));
-        bar
-    });
+    let p = Progress::start(message);
     let out = f();
-    if let Some(b) = bar {
-        b.finish_and_clear();
-    }
+    p.bar.inspect(|b| b.finish_and_clear());
     out
+}
+
+/// A status line on stderr (only when stderr is a terminal): the current step of a command,
+/// updated by the context before each query, and at the end of a run that took more than a
+/// second a line saying what was done and how long it took.
+struct Progress {
+    bar: Option<indicatif::ProgressBar>,
+    started: std::time::Instant,
+    steps: std::rc::Rc<std::cell::Cell<usize>>,
+}
+
+impl Progress {
+    fn start(message: &str) -> Progress {
+        use std::io::IsTerminal;
+        let bar = std::io::stderr().is_terminal().then(|| {
+            let bar = indicatif::ProgressBar::new_spinner();
+            bar.set_message(message.to_string());
+            bar.enable_steady_tick(std::time::Duration::from_millis(100));
+            bar
+        });
+        Progress {
+            bar,
+            started: std::time::Instant::now(),
+            steps: Default::default(),
+        }
+    }
+
+    /// Shows the context's steps on the status line.
+    fn follow(&self, ctx: &Context) {
+        let bar = self.bar.clone();
+        let steps = self.steps.clone();
+        ctx.on_progress(move |what| {
+            steps.set(steps.get() + 1);
+            if let Some(b) = &bar {
+                b.set_message(what.to_string());
+            }
+        });
+    }
+
+    /// Clears the status line; a summary part for stderr when the run was long and shown.
+    fn finish(self, what: &str) -> Option<Part> {
+        let bar = self.bar?;
+        bar.finish_and_clear();
+        let secs = self.started.elapsed().as_secs_f64();
+        let steps = self.steps.get();
+        (secs > 1.0).then(|| {
+            Part::Stderr(format!(
+                "plumb: {what} in {secs:.1}s ({steps} {})\n",
+                if steps == 1 { "query" } else { "queries" }
+            ))
+        })
+    }
 }
 
 /// A relative change or share written as `5%` or `0.05` (positive; without `%` below 1, so
