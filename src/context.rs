@@ -364,6 +364,7 @@ impl Context {
         check_segment_sizes(&table, options.max_segment_values)?;
         let spec = compile::readout_spec(catalog, experiment, &plan, options);
         let mut readout = crate::stats::readout::build(&spec, &table);
+        self.add_daily_sample_ratio(&plan, &dialect, &mut readout)?;
         if options.population_impact {
             self.add_population_impact(catalog, experiment, &table, &dialect, &mut readout)?;
         }
@@ -385,6 +386,51 @@ impl Context {
         check_segment_sizes(&table, options.max_segment_values)?;
         let spec = compile::readout_spec(self.catalog(), experiment, &plan, options);
         Ok(crate::stats::readout::build(&spec, &table))
+    }
+
+    /// The per-day sample-ratio check: one small query over the exposure log (arms per day of
+    /// first exposure, under the readout's exposure rules).
+    fn add_daily_sample_ratio(
+        &self,
+        plan: &ExperimentPlan,
+        dialect: &Dialect,
+        readout: &mut Readout,
+    ) -> Result<()> {
+        let sql = dialect.render_daily(plan)?;
+        self.step(&format!("{}: arms per day", plan.experiment));
+        let rows = crate::timing::stage("daily arms query", || self.query(&sql))?;
+        let text = |c: Option<&execute::Cell>| match c {
+            Some(execute::Cell::Text(t)) => Some(t.clone()),
+            Some(execute::Cell::Number(x)) => Some(x.to_string()),
+            _ => None,
+        };
+        let mut days: Vec<(String, BTreeMap<String, u64>)> = Vec::new();
+        for row in &rows {
+            let get = |k: &str| {
+                row.iter()
+                    .find(|(name, _)| name.eq_ignore_ascii_case(k))
+                    .map(|(_, v)| v)
+            };
+            let (Some(day), Some(arm), Some(execute::Cell::Number(n))) =
+                (text(get("exposure_day")), text(get("arm")), get("units"))
+            else {
+                continue;
+            };
+            // `2026-03-02 00:00:00` (or with a zone) is shown as its date.
+            let day = if day.len() >= 10 && day.as_bytes()[4] == b'-' {
+                day[..10].to_string()
+            } else {
+                day
+            };
+            match days.last_mut() {
+                Some((d, counts)) if *d == day => {
+                    counts.insert(arm, *n as u64);
+                }
+                _ => days.push((day, BTreeMap::from([(arm, *n as u64)]))),
+            }
+        }
+        crate::stats::readout::add_daily_sample_ratio(readout, &days);
+        Ok(())
     }
 
     /// Whole-population impact: the totals of the experiment's count and sum metrics over the

@@ -437,12 +437,18 @@ fn statistics_table_hand_off_gives_the_same_readout() {
         serde_json::from_slice(&local.stdout).unwrap(),
         serde_json::from_slice(&handed.stdout).unwrap(),
     );
-    // Population impact needs the local event tables; everything else must be identical.
+    // Population impact needs the local event tables, and the per-day sample-ratio check the
+    // exposure log (one more query): a statistics file has neither. Everything else must be
+    // identical.
+    let run = |d: &serde_json::Value| d["trust_checks_run"].as_array().unwrap().len();
+    assert_eq!(run(&a), run(&b) + 1);
+    assert_eq!(a["trust_checks_run"][run(&b)], "daily_sample_ratio");
     for doc in [&mut a, &mut b] {
         for r in doc["results"].as_array_mut().unwrap() {
             r.as_object_mut().unwrap().remove("population_impact");
         }
         doc.as_object_mut().unwrap().remove("assumptions");
+        doc.as_object_mut().unwrap().remove("trust_checks_run");
     }
     assert_eq!(a, b);
     // Another experiment's query, or a changed catalog, is rejected with a clear error.

@@ -581,6 +581,14 @@ fn cases() -> Vec<Case> {
             1,
             "W004",
         ),
+        case(
+            "a logging outage of one arm on some days",
+            vec![Edit::Run(drop_treatment_days)],
+            "analyze one_page_checkout",
+            // The whole-period ratio still passes (p > 0.001); only the per-day check sees it.
+            0,
+            "Sample-ratio mismatch on 3 of 21 days (2026-03-05, 2026-03-06, 2026-03-07",
+        ),
         // Reading what it should not.
         case(
             "data-modifying CTE in sql:",
@@ -687,6 +695,23 @@ fn set(row: &mut plumb::execute::NamedRow, column: &str, value: &str) {
 }
 
 /// Replaces every occurrence of `old` in a data file.
+/// Treatment exposures of one-page-checkout on 2026-03-05 to 03-07 are lost (a logging outage).
+fn drop_treatment_days(dir: &Path) {
+    let path = dir.join("data/assignments.csv");
+    let text = std::fs::read_to_string(&path).unwrap();
+    let kept: Vec<&str> = text
+        .lines()
+        .filter(|l| {
+            !(l.contains(",one-page-checkout,treatment,")
+                && ["2026-03-05", "2026-03-06", "2026-03-07"]
+                    .iter()
+                    .any(|d| l.contains(d)))
+        })
+        .collect();
+    assert!(kept.len() < text.lines().count(), "rows were dropped");
+    std::fs::write(&path, kept.join("\n") + "\n").unwrap();
+}
+
 fn edit_data(dir: &Path, file: &str, old: &str, new: &str) {
     let path = dir.join(file);
     let text = std::fs::read_to_string(&path).unwrap();

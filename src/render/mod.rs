@@ -53,6 +53,11 @@ const BUILTIN: &[(&str, &str, &str)] = &[
         include_str!("../../dialects/generic/totals.sql.j2"),
     ),
     (
+        "generic",
+        "daily.sql.j2",
+        include_str!("../../dialects/generic/daily.sql.j2"),
+    ),
+    (
         "duckdb",
         "dialect.yaml",
         include_str!("../../dialects/duckdb/dialect.yaml"),
@@ -95,6 +100,7 @@ const TEMPLATES: &[&str] = &[
     "exposures.sql.j2",
     "report.sql.j2",
     "totals.sql.j2",
+    "daily.sql.j2",
 ];
 
 /// Names of the built-in target dialects (the generic baseline excluded).
@@ -769,6 +775,23 @@ impl Dialect {
             rows => rows,
         };
         self.render_template("totals.sql.j2", ctx)
+    }
+
+    /// Renders the daily arm sizes of an experiment: per day of first exposure and arm, the
+    /// exposed units under the readout's exposure rules (for the per-day sample-ratio check).
+    pub fn render_daily(&self, plan: &ExperimentPlan) -> Result<String> {
+        let ctx = context! {
+            experiment => plan.experiment,
+            dialect => self.caps.name,
+            utc_session => self.caps.utc_session,
+            string_type => self.caps.string_type,
+            start => self.timestamp(plan.start)?,
+            end => self.timestamp(plan.end)?,
+            exposures => self.exposures_context(&plan.exposures),
+            exposure_segments => Vec::<minijinja::Value>::new(),
+            day => self.snippet("date_trunc", context! { grain => "day", expr => "first_exposed_at" })?,
+        };
+        self.render_template("daily.sql.j2", ctx)
     }
 
     /// Template context of the exposure log part shared by readout and report queries.

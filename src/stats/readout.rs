@@ -809,6 +809,61 @@ fn trust_checks(
     out
 }
 
+/// The per-day sample-ratio check (run when the engine can count arms per day of first
+/// exposure; not for a statistics file): Pearson's chi-square of each day's new units per arm
+/// against the planned split (days with 20 units or more), Benjamini–Hochberg adjusted over
+/// the days, flagged below 0.001. A mismatch on some days only — a deploy, a logging outage,
+/// a bot wave — can hide inside a whole-period ratio that looks fine.
+pub fn add_daily_sample_ratio(readout: &mut Readout, days: &[(String, BTreeMap<String, u64>)]) {
+    let planned: Vec<(&str, f64)> = readout
+        .arms
+        .iter()
+        .filter_map(|a| a.planned_share.map(|s| (a.name.as_str(), s)))
+        .collect();
+    let shares: Vec<f64> = planned.iter().map(|(_, s)| *s).collect();
+    let mut tested: Vec<(&str, f64)> = Vec::new();
+    for (day, counts) in days {
+        let observed: Vec<u64> = planned
+            .iter()
+            .map(|(a, _)| counts.get(*a).copied().unwrap_or(0))
+            .collect();
+        if observed.iter().sum::<u64>() < 20 {
+            continue;
+        }
+        if let Some(s) = super::sample_ratio(&observed, &shares) {
+            tested.push((day.as_str(), s.p_value));
+        }
+    }
+    let p: Vec<f64> = tested.iter().map(|(_, p)| *p).collect();
+    let adjusted = super::multiple::benjamini_hochberg(&p);
+    let flagged: Vec<(String, f64)> = tested
+        .iter()
+        .zip(&adjusted)
+        .filter(|(_, a)| **a < super::SRM_THRESHOLD)
+        .map(|((d, _), a)| (d.to_string(), *a))
+        .collect();
+    if !flagged.is_empty() {
+        let list: Vec<String> = flagged.iter().take(5).map(|(d, _)| d.clone()).collect();
+        readout.cautions.push(format!(
+            "Sample-ratio mismatch on {} of {} days ({}{}; BH-adjusted p < {}): assignment or logging broke on those days; find the cause before reading the results.",
+            flagged.len(),
+            tested.len(),
+            list.join(", "),
+            if flagged.len() > 5 { ", ..." } else { "" },
+            super::SRM_THRESHOLD
+        ));
+    }
+    for (day, p) in flagged {
+        readout.trust_checks.push(TrustCheck {
+            check: "daily_sample_ratio",
+            subject: day,
+            p_value: Some(p),
+            value: None,
+        });
+    }
+    readout.trust_checks_run.push("daily_sample_ratio");
+}
+
 fn plural_days(days: f64) -> String {
     if (days - 1.0).abs() < 1e-9 {
         "1 day".into()
@@ -1678,6 +1733,36 @@ mod tests {
                 .map(|c| c.check);
             assert_eq!(got, check, "{days} days");
         }
+    }
+
+    /// A day whose new units do not follow the split is flagged (after BH over the days); a
+    /// balanced day and a day with fewer than 20 units are not.
+    #[test]
+    fn sample_ratio_is_checked_per_day() {
+        let s = spec(vec![metric("a", Role::Primary, false)]);
+        let t = table(&[("a", (2000, 1.0, 1.0), (2000, 1.0, 1.0))]);
+        let mut r = build(&s, &t);
+        let day =
+            |c: u64, tr: u64| BTreeMap::from([("control".to_string(), c), ("treatment".to_string(), tr)]);
+        let days = vec![
+            ("2026-01-01".to_string(), day(500, 510)),
+            ("2026-01-02".to_string(), day(500, 300)),
+            ("2026-01-03".to_string(), day(9, 1)),
+        ];
+        add_daily_sample_ratio(&mut r, &days);
+        let flagged: Vec<&str> = r
+            .trust_checks
+            .iter()
+            .filter(|c| c.check == "daily_sample_ratio")
+            .map(|c| c.subject.as_str())
+            .collect();
+        assert_eq!(flagged, ["2026-01-02"]);
+        assert!(r.trust_checks_run.contains(&"daily_sample_ratio"));
+        assert!(
+            r.cautions
+                .iter()
+                .any(|c| c.starts_with("Sample-ratio mismatch on 1 of 2 days (2026-01-02"))
+        );
     }
 
     #[test]
