@@ -544,12 +544,11 @@ const TEXT_WIDTH: usize = 98;
 /// assumptions. The default layout fits 100 columns for two arms and short metric names.
 pub fn readout_text(r: &Readout, style: &TextStyle) -> String {
     let mut out = String::new();
-    for (k, line) in r.headline.iter().enumerate() {
-        let color = if r.void || (k == 0 && !r.guardrails_failed.is_empty()) {
-            Some(mark::RED)
-        } else {
-            None
-        };
+    for line in &r.headline {
+        let failed = ["VOID", "GUARDRAIL FAILED", "CHECK FAILED"]
+            .iter()
+            .any(|p| line.starts_with(p));
+        let color = if failed { Some(mark::RED) } else { None };
         let text = wrap(line, TEXT_WIDTH, "", "  ");
         match color {
             Some(c) => out.push_str(&format!("{}{c}{text}{}", mark::BOLD, mark::RESET)),

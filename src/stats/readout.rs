@@ -619,7 +619,20 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
     };
     let mut cautions = cautions(spec, srm.as_ref(), &excluded, &results, &guardrails_failed);
     let trust_checks = trust_checks(spec, table, &groups, &results, &mut cautions);
-    let headline = headline(spec, srm.as_ref(), &results, &guardrails_failed);
+    let mut headline = headline(spec, srm.as_ref(), &results, &guardrails_failed);
+    let slices = trust_checks
+        .iter()
+        .filter(|c| c.check == "segment_sample_ratio")
+        .count();
+    if slices > 0 && !headline[0].starts_with("VOID") {
+        insert_check_failed(
+            &mut headline,
+            format!(
+                "CHECK FAILED: sample-ratio mismatch within {slices} segment value{} (see cautions); their rows cannot be trusted.",
+                if slices == 1 { "" } else { "s" }
+            ),
+        );
+    }
     Readout {
         headline,
         experiment: spec.experiment.clone(),
@@ -853,6 +866,16 @@ pub fn add_daily_sample_ratio(readout: &mut Readout, days: &[(String, BTreeMap<S
             super::SRM_THRESHOLD
         ));
     }
+    if !flagged.is_empty() && !readout.void {
+        insert_check_failed(
+            &mut readout.headline,
+            format!(
+                "CHECK FAILED: sample-ratio mismatch on {} of {} days (see cautions); find the cause before deciding.",
+                flagged.len(),
+                tested.len()
+            ),
+        );
+    }
     for (day, p) in flagged {
         readout.trust_checks.push(TrustCheck {
             check: "daily_sample_ratio",
@@ -862,6 +885,16 @@ pub fn add_daily_sample_ratio(readout: &mut Readout, days: &[(String, BTreeMap<S
         });
     }
     readout.trust_checks_run.push("daily_sample_ratio");
+}
+
+/// Puts a failed trust check into the headline, after `GUARDRAIL FAILED` lines and before the
+/// primary verdicts.
+fn insert_check_failed(headline: &mut Vec<String>, line: String) {
+    let at = headline
+        .iter()
+        .take_while(|l| l.starts_with("GUARDRAIL FAILED") || l.starts_with("CHECK FAILED"))
+        .count();
+    headline.insert(at, line);
 }
 
 fn plural_days(days: f64) -> String {
@@ -1713,6 +1746,7 @@ mod tests {
             .map(|c| c.subject.as_str())
             .collect();
         assert_eq!(flagged, ["device = desktop"]);
+        assert!(r.headline[0].starts_with("CHECK FAILED: sample-ratio mismatch within 1 segment value"));
     }
 
     #[test]
