@@ -138,30 +138,20 @@ impl Context {
         };
         match crate::timing::stage("resolve", || loaded.resolve(&sources, &schemas)) {
             Opened::Invalid(diags) => Err(Error::catalog(sources, diags)),
-            Opened::Ok(ws, warnings) => {
-                // The local data's types, bound item by item (see `probe`).
+            Opened::Ok(ws, mut warnings) => {
+                // The local data's types, bound item by item (see `probe`); its errors fail the
+                // open, its warnings join the lint warnings.
                 if let Some(binder) = engine.as_deref().and_then(|e| e.binder()) {
                     let dialect = Dialect::load("duckdb", options.dialects_dir.as_deref())?;
                     let tables: Vec<String> = schemas.keys().cloned().collect();
                     let found = crate::timing::stage("probe local data", || {
                         crate::probe::probe(&ws, &dialect, binder, tables)
                     });
-                    let mut warnings = warnings;
-                    if found.iter().any(Diagnostic::is_error) {
-                        warnings.extend(found);
+                    let failed = found.iter().any(Diagnostic::is_error);
+                    warnings.extend(found);
+                    if failed {
                         return Err(Error::catalog(sources, warnings));
                     }
-                    warnings.extend(found);
-                    return Ok(Context {
-                        workspace: *ws,
-                        sources,
-                        warnings,
-                        dialects_dir: options.dialects_dir,
-                        dialects: RefCell::new(BTreeMap::new()),
-                        choice: options.engine,
-                        engine: RefCell::new(engine),
-                        progress: RefCell::new(None),
-                    });
                 }
                 Ok(Context {
                     workspace: *ws,

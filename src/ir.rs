@@ -108,6 +108,20 @@ pub enum Aggregation {
 }
 
 impl Aggregation {
+    /// The `per_unit` spelling, `at_least(N)` with its count (part of the readout query's
+    /// fingerprint: do not change it).
+    pub fn text(self) -> String {
+        match self {
+            Aggregation::Count => "count".into(),
+            Aggregation::Sum => "sum".into(),
+            Aggregation::Distinct => "distinct".into(),
+            Aggregation::Any => "any".into(),
+            Aggregation::Min => "min".into(),
+            Aggregation::Max => "max".into(),
+            Aggregation::AtLeast(n) => format!("at_least({n})"),
+        }
+    }
+
     /// Units without events get 0, except for min/max which stay NULL.
     pub fn zero_fill(self) -> bool {
         !matches!(self, Aggregation::Min | Aggregation::Max)

@@ -144,6 +144,17 @@ fn sequential_mode_keeps_false_positives_under_daily_looks() {
     );
 }
 
+/// Fixed-sample comparisons at α = 0.05 without CUPED.
+fn fixed_sample_options() -> stats::analysis::Options {
+    stats::analysis::Options {
+        alpha: 0.05,
+        plan_alpha: 0.05,
+        cuped: false,
+        sequential: false,
+        power: 0.8,
+    }
+}
+
 /// A 0/1 metric as the readout sees it: n units, x of them with a 1.
 fn binary_arm(x: u64, n: u64) -> stats::analysis::ArmMoments {
     let p = x as f64 / n as f64;
@@ -169,13 +180,7 @@ fn binomial(rng: &mut Rng, n: u64, p: f64) -> u64 {
 /// below α when both arms have the same rate.
 #[test]
 fn small_binary_samples_keep_coverage_and_error_rates() {
-    let o = stats::analysis::Options {
-        alpha: 0.05,
-        plan_alpha: 0.05,
-        cuped: false,
-        sequential: false,
-        power: 0.8,
-    };
+    let o = fixed_sample_options();
     let mut rng = Rng(11);
     for n in [20u64, 50, 100] {
         let (pc, pt) = (0.02, 0.05);
@@ -211,13 +216,7 @@ fn small_binary_samples_keep_coverage_and_error_rates() {
 /// pooled z test said p = 0.014.
 #[test]
 fn three_of_three_against_none_is_not_a_detected_change() {
-    let o = stats::analysis::Options {
-        alpha: 0.05,
-        plan_alpha: 0.05,
-        cuped: false,
-        sequential: false,
-        power: 0.8,
-    };
+    let o = fixed_sample_options();
     let (c, t) = (binary_arm(0, 3), binary_arm(3, 3));
     let cmp = stats::analysis::compare(&c, &t, &[c, t], true, None, &o);
     assert_eq!(cmp.method, stats::analysis::Method::FisherNewcombe);

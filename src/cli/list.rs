@@ -5,7 +5,7 @@
 use super::{Format, Global, Outcome};
 use crate::context::EngineChoice;
 use crate::error::Result;
-use crate::ir::{Aggregation, Catalog, MetricKind, SegmentKind, Source};
+use crate::ir::{Catalog, MetricKind, SegmentKind, Source};
 use serde_json::json;
 
 #[derive(Debug, clap::Args)]
@@ -21,25 +21,13 @@ fn source(s: &Source) -> String {
     }
 }
 
-fn aggregation(a: Aggregation) -> String {
-    match a {
-        Aggregation::Count => "count".into(),
-        Aggregation::Sum => "sum".into(),
-        Aggregation::Distinct => "distinct".into(),
-        Aggregation::Any => "any".into(),
-        Aggregation::Min => "min".into(),
-        Aggregation::Max => "max".into(),
-        Aggregation::AtLeast(n) => format!("at_least {n}"),
-    }
-}
-
 fn metric_kind(c: &Catalog, kind: &MetricKind) -> String {
     match kind {
         MetricKind::Events {
             table,
             aggregation: a,
             ..
-        } => format!("{} of {}", aggregation(*a), c.event_tables[*table].name),
+        } => format!("{} of {}", a.text(), c.event_tables[*table].name),
         MetricKind::Ratio {
             numerator,
             denominator,

@@ -420,18 +420,6 @@ fn source_text(source: &Source) -> String {
     }
 }
 
-fn aggregation_text(a: Aggregation) -> String {
-    match a {
-        Aggregation::Count => "count".into(),
-        Aggregation::Sum => "sum".into(),
-        Aggregation::Distinct => "distinct".into(),
-        Aggregation::Any => "any".into(),
-        Aggregation::Min => "min".into(),
-        Aggregation::Max => "max".into(),
-        Aggregation::AtLeast(n) => format!("at_least({n})"),
-    }
-}
-
 fn kind_text(kind: &PlannedKind) -> String {
     match kind {
         PlannedKind::Mean { column } => format!("mean({column})"),
@@ -490,7 +478,7 @@ pub fn canonical_text(plan: &ExperimentPlan) -> String {
                 text,
                 "  aggregate {} {} value={} where={} window=[{}, {})",
                 a.column,
-                aggregation_text(a.aggregation),
+                a.aggregation.text(),
                 expr(&a.value),
                 expr(&a.filter),
                 a.window.start,
