@@ -1,7 +1,7 @@
 //! Every generated column and CTE name, built (and read back) in one place.
 //!
 //! The readout query's per-unit columns, its covariate, covariance and cap columns, the
-//! statistics table's `<column>__n` / `__mean` / `__var` columns and the fixed result columns
+//! statistics table's `<column>__n` / `__mean` / `__var` / `__m3` columns and the fixed result columns
 //! are a protocol between `plan`, `render`, the templates and `execute` (which reads the
 //! statistics table back, also from a warehouse export). Writing the names here, and nowhere
 //! else, keeps that protocol in one file: a renamed column is one change, and the reader can
@@ -65,6 +65,12 @@ pub fn segment(name: &str) -> String {
     format!("segment__{name}")
 }
 
+/// The arm's mean of a per-unit column, beside each per-unit row (the centre of the third
+/// moment; a window column of the final `SELECT`, never in the result).
+pub fn centre(column: &str) -> String {
+    format!("{column}__centre")
+}
+
 /// The CTE of one pass over an event table.
 pub fn scan(table: &str) -> String {
     format!("scan_{table}")
@@ -84,6 +90,9 @@ pub enum Stat {
     Mean,
     /// `var_samp`.
     Var,
+    /// The third central moment `avg((x - mean)³)` (population form; overall rows only), from
+    /// which the heavy-tails check takes the skewness. Statistics layout 2 and later.
+    M3,
 }
 
 /// The statistics-table column of a moment of `column`.
@@ -92,6 +101,7 @@ pub fn stat(column: &str, stat: Stat) -> String {
         Stat::N => "n",
         Stat::Mean => "mean",
         Stat::Var => "var",
+        Stat::M3 => "m3",
     };
     format!("{column}__{suffix}")
 }
@@ -106,6 +116,8 @@ mod tests {
         assert_eq!(covariance("revenue", "orders"), "revenue__cov__orders");
         assert_eq!(stat("orders__pre", Stat::Var), "orders__pre__var");
         assert_eq!(cap("revenue"), "revenue__cap");
+        assert_eq!(stat("revenue", Stat::M3), "revenue__m3");
+        assert_eq!(centre("revenue"), "revenue__centre");
         assert_eq!(segment("region"), "segment__region");
         assert_eq!(scan("orders"), "scan_orders");
         assert_eq!(segment_cte("region"), "segment_region");

@@ -405,6 +405,18 @@ fn run_every_kind(users: usize) -> (StatsTable, plumb::plan::ExperimentPlan, Dat
                 "{k}: {m:?} vs {o:?}"
             );
         }
+        assert_eq!(
+            a.third_moments.keys().collect::<Vec<_>>(),
+            b.third_moments.keys().collect::<Vec<_>>(),
+            "third moments of {} {:?}",
+            a.arm,
+            a.segment
+        );
+        for (k, m3) in &a.third_moments {
+            let o = b.third_moments[k];
+            let scale = a.columns[k].var.powf(1.5).max(1e-300);
+            assert!((m3 - o).abs() <= 1e-9 * scale, "{k} third moment: {m3} vs {o}");
+        }
         for (k, c) in &a.covariances {
             let o = b.covariances[k];
             assert!(
@@ -437,6 +449,21 @@ fn every_per_arm_statistic_matches_an_independent_computation() {
             assert_eq!(got.n, n, "{arm} {} n", c.column);
             close(got.mean, mean, &format!("{arm} {} mean", c.column));
             close(got.var, var, &format!("{arm} {} var", c.column));
+            checked += 1;
+        }
+        let third = plumb::plan::third_moment_columns(&plan);
+        assert!(!third.is_empty(), "the catalog has mean metrics");
+        assert_eq!(row.third_moments.len(), third.len());
+        for c in third {
+            let v: Vec<f64> = mine.iter().filter_map(|u| u.values[c]).collect();
+            let (n, mean) = (v.len() as f64, v.iter().sum::<f64>() / v.len() as f64);
+            let m3 = v.iter().map(|x| (x - mean).powi(3)).sum::<f64>() / n;
+            let scale = row.columns[c].var.powf(1.5).max(1.0);
+            assert!(
+                (row.third_moments[c] - m3).abs() <= 1e-9 * scale,
+                "{arm} {c} third moment: {} vs {m3}",
+                row.third_moments[c]
+            );
             checked += 1;
         }
         for c in &plan.covariances {

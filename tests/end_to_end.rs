@@ -451,6 +451,68 @@ fn statistics_table_hand_off_gives_the_same_readout() {
         doc.as_object_mut().unwrap().remove("trust_checks_run");
     }
     assert_eq!(a, b);
+    // A table exported under statistics layout 1 (before the third moments) is still read,
+    // with its own fingerprint; only the heavy-tails check does not run, and the readout says so.
+    let d = plumb::render::Dialect::load("duckdb", None).unwrap();
+    let (plan, _) = plumb::compile_experiment(&ws.catalog, id, &[], &d).unwrap();
+    let text = std::fs::read_to_string(dir.path().join("stats.csv")).unwrap();
+    let mut lines = text.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    let keep: Vec<usize> = (0..header.len())
+        .filter(|&i| !header[i].ends_with("__m3"))
+        .collect();
+    assert!(keep.len() < header.len(), "the current layout has third moments");
+    let old_fp = plumb::plan::fingerprint_at(&plan, 1);
+    let mut old = keep.iter().map(|&i| header[i]).collect::<Vec<_>>().join(",") + "\n";
+    for line in lines {
+        let cells: Vec<&str> = line.split(',').collect();
+        let row: Vec<String> = keep
+            .iter()
+            .map(|&i| match header[i] {
+                "plumb_layout" => "1".to_string(),
+                "plumb_fingerprint" => old_fp.clone(),
+                _ => cells[i].to_string(),
+            })
+            .collect();
+        old += &(row.join(",") + "\n");
+    }
+    std::fs::write(dir.path().join("stats_v1.csv"), old).unwrap();
+    let v1 = plumb_in(
+        dir.path(),
+        &[
+            "analyze",
+            "one_page_checkout",
+            "--format",
+            "json",
+            "--stats",
+            dir.path().join("stats_v1.csv").to_str().unwrap(),
+        ],
+    );
+    assert!(v1.status.success(), "{}", String::from_utf8_lossy(&v1.stderr));
+    let mut v1: serde_json::Value = serde_json::from_slice(&v1.stdout).unwrap();
+    for r in v1["results"].as_array_mut().unwrap() {
+        r.as_object_mut().unwrap().remove("population_impact");
+    }
+    let run: Vec<&str> = v1["trust_checks_run"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|c| c.as_str().unwrap())
+        .collect();
+    assert!(
+        !run.contains(&"heavy_tails") && run.contains(&"pre_period_imbalance"),
+        "{run:?}"
+    );
+    assert!(
+        v1["cautions"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|c| c.as_str().unwrap().contains("layout 1")),
+        "{}",
+        v1["cautions"]
+    );
+    assert_eq!(v1["results"], b["results"]);
     // Another experiment's query, or a changed catalog, is rejected with a clear error.
     let other = plumb_in(
         dir.path(),

@@ -193,7 +193,25 @@ fn compare_with_duckdb(ws: &Path, exp: &str, stats: &Path) {
                 "{exp} {k}: duckdb {x} vs engine {y}"
             );
         }
+        // Third moments (overall rows), on the scale of the variance^1.5 they are divided by.
+        assert_eq!(
+            a.third_moments.keys().collect::<Vec<_>>(),
+            b.third_moments.keys().collect::<Vec<_>>(),
+            "{exp} third moments"
+        );
+        for (k, x) in &a.third_moments {
+            let y = b.third_moments[k];
+            let scale = a.columns[k].var.powf(1.5).max(1e-12);
+            assert!(
+                (x - y).abs() <= 1e-9 * scale,
+                "{exp} {k} m3: duckdb {x} vs engine {y}"
+            );
+        }
     }
+    assert!(
+        duck.rows.iter().any(|r| !r.third_moments.is_empty()),
+        "{exp}: no third moments compared"
+    );
     let local = strip_handed(plumb(ws, &["analyze", exp, "--format", "json"]));
     let handed = strip_handed(plumb(
         ws,

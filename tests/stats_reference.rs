@@ -364,3 +364,25 @@ fn newcombe_interval_matches_published_values() {
         assert_close(h, hi, 5e-5, &format!("{x1}/{n1} - {x2}/{n2} high"));
     }
 }
+
+/// Skewness of a 0/1 sample with k ones in n equals the Bernoulli skewness of p = k/n,
+/// (1 − 2p)/√(p(1 − p)) (textbook closed form; g₁ is the population-moment skewness, as
+/// scipy.stats.skew with bias=True computes it); and a symmetric sample has skewness 0.
+#[test]
+fn skewness_matches_the_bernoulli_closed_form() {
+    for (k, n) in [(1usize, 4usize), (3, 10), (1, 100), (50, 100)] {
+        let v: Vec<f64> = (0..n).map(|i| if i < k { 1.0 } else { 0.0 }).collect();
+        let m = Moments::from_values(&v);
+        let m3 = v.iter().map(|x| (x - m.mean).powi(3)).sum::<f64>() / n as f64;
+        let p = k as f64 / n as f64;
+        let want = (1.0 - 2.0 * p) / (p * (1.0 - p)).sqrt();
+        assert_close(stats::skewness(&m, m3).unwrap(), want, 1e-12, &format!("{k}/{n}"));
+    }
+    let m = Moments::from_values(&[1.0, 2.0, 3.0, 4.0, 5.0]);
+    assert_close(stats::skewness(&m, 0.0).unwrap(), 0.0, 0.0, "symmetric");
+    // No spread, no skewness.
+    assert_eq!(
+        stats::skewness(&Moments::from_values(&[2.0, 2.0, 2.0]), 0.0),
+        None
+    );
+}

@@ -1,9 +1,9 @@
 //! Arm-level statistics from per-unit rows, the same whatever the row order or thread count.
 //!
 //! The local engine computes the readout's final aggregation here instead of in SQL: count,
-//! mean, sample variance and sample covariance per arm (and per arm and segment value), the
+//! mean, sample variance, third central moment and sample covariance per arm (and per arm and segment value), the
 //! very numbers the template's final `SELECT` computes with `count`, `avg`, `var_samp` and
-//! `covar_samp`. Floating-point addition depends on order, and a parallel engine adds in a
+//! `covar_samp` (and `avg` of cubed deviations). Floating-point addition depends on order, and a parallel engine adds in a
 //! scheduling-dependent order; here every sum is *order-independent*: each value is rounded
 //! onto a fixed binary grid chosen from the largest magnitude in its group (62 significant
 //! bits below it) and the grid integers are added exactly in `i128`. The result depends only
@@ -86,6 +86,18 @@ pub fn moments(col: &Column, rows: &[u32]) -> (u64, Option<f64>, Option<f64>) {
     let mean = grid_sum(present.iter().copied()) / n as f64;
     let var = (n > 1).then(|| grid_sum(present.iter().map(|x| (x - mean) * (x - mean))) / (n - 1) as f64);
     (n, Some(mean), var)
+}
+
+/// The third central moment `avg((x - mean)³)` of a column over `rows` (NULLs skipped; the
+/// population form, which the template's final `SELECT` computes about the arm's mean).
+pub fn third_moment(col: &Column, rows: &[u32]) -> Option<f64> {
+    let present: Vec<f64> = rows.iter().filter_map(|&r| col.get(r as usize)).collect();
+    let n = present.len();
+    if n == 0 {
+        return None;
+    }
+    let mean = grid_sum(present.iter().copied()) / n as f64;
+    Some(grid_sum(present.iter().map(|x| (x - mean) * (x - mean) * (x - mean))) / n as f64)
 }
 
 /// `covar_samp` of two columns over the rows of `rows` where both are present.
@@ -192,6 +204,10 @@ mod tests {
             values: vec![1.0, 2.0, 2.0, 2.0, 3.0, 3.0, 4.0, 5.0, 0.0],
             valid: vec![true; 9],
         };
+        // Third moment about the mean 5 of the eight present values: (-27 - 1 - 1 - 1 + 0 + 0 +
+        // 8 + 64) / 8.
+        assert_eq!(third_moment(&col, &rows), Some(42.0 / 8.0));
+        assert_eq!(third_moment(&col, &[8]), None);
         // Covariance over the rows where both are present (row 8 is NULL in `col`): means 5 and
         // 2.75, sum of cross products 19, over n - 1 = 7.
         assert_eq!(covariance(&col, &other, &rows), Some(19.0 / 7.0));

@@ -668,6 +668,13 @@ mod readout {
                         .map(|c| Job::Covariance(col_index[c.a.as_str()], col_index[c.b.as_str()])),
                 )
                 .collect();
+            // Overall rows also carry the third moments of the mean metrics.
+            let third = crate::plan::third_moment_columns(plan);
+            let overall_jobs: Vec<Job> = jobs
+                .iter()
+                .copied()
+                .chain(third.iter().map(|c| Job::ThirdMoment(col_index[c])))
+                .collect();
             let fingerprint = crate::plan::fingerprint(plan);
             let mut out = Vec::new();
             for ((set, value, arm), rows) in groups {
@@ -694,13 +701,25 @@ mod readout {
                 // Every column and covariance of this group, spread over the engine's threads;
                 // each result depends only on its values, so the split changes nothing.
                 let num = |x: Option<f64>| x.map_or(Cell::Null, Cell::Number);
-                for (job, result) in jobs.iter().zip(run_jobs(&jobs, &cols, &rows, threads)) {
+                let jobs = if set == 0 {
+                    &overall_jobs
+                } else {
+                    // Segment rows carry the third-moment columns empty, as the SQL does.
+                    for c in &third {
+                        row.insert(columns::stat(c, Stat::M3), Cell::Null);
+                    }
+                    &jobs
+                };
+                for (job, result) in jobs.iter().zip(run_jobs(jobs, &cols, &rows, threads)) {
                     match (job, result) {
                         (Job::Moments(i), JobResult::Moments(n, mean, var)) => {
                             let c = &plan.columns[*i].column;
                             row.insert(columns::stat(c, Stat::N), Cell::Number(n as f64));
                             row.insert(columns::stat(c, Stat::Mean), num(mean));
                             row.insert(columns::stat(c, Stat::Var), num(var));
+                        }
+                        (Job::ThirdMoment(i), JobResult::ThirdMoment(v)) => {
+                            row.insert(columns::stat(&plan.columns[*i].column, Stat::M3), num(v));
                         }
                         (Job::Covariance(a, b), JobResult::Covariance(v)) => {
                             let name =
@@ -736,11 +755,13 @@ mod readout {
     #[derive(Debug, Clone, Copy)]
     enum Job {
         Moments(usize),
+        ThirdMoment(usize),
         Covariance(usize, usize),
     }
 
     enum JobResult {
         Moments(u64, Option<f64>, Option<f64>),
+        ThirdMoment(Option<f64>),
         Covariance(Option<f64>),
     }
 
@@ -750,6 +771,7 @@ mod readout {
                 let (n, mean, var) = arm_stats::moments(&cols[i], rows);
                 JobResult::Moments(n, mean, var)
             }
+            Job::ThirdMoment(i) => JobResult::ThirdMoment(arm_stats::third_moment(&cols[i], rows)),
             Job::Covariance(a, b) => JobResult::Covariance(arm_stats::covariance(&cols[a], &cols[b], rows)),
         }
     }

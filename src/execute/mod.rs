@@ -97,6 +97,7 @@ const MAX_COUNT: f64 = 9_007_199_254_740_992.0;
 pub fn stats_table(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<StatsTable> {
     let mut table = StatsTable::default();
     let mut seen = std::collections::BTreeSet::new();
+    let third_moments = crate::plan::third_moment_columns(plan);
     for (i, row) in rows.iter().enumerate() {
         let row: NamedRow = row
             .iter()
@@ -127,7 +128,15 @@ pub fn stats_table(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<StatsTabl
             }
             Ok(x)
         };
+        // Layout 1 tables (exported before the third moments existed) have none; a missing
+        // layout column is the fingerprint check's to refuse.
+        let layout = number(row, columns::LAYOUT)
+            .ok()
+            .flatten()
+            .unwrap_or(f64::from(crate::plan::STATS_LAYOUT));
+        let with_third = layout >= 2.0;
         if i == 0 {
+            table.third_moments = with_third;
             table.excluded_multiple_arms = count(columns::EXCLUDED_MULTIPLE_ARMS)?;
             table.excluded_missing_arm = count(columns::EXCLUDED_MISSING_ARM)?;
             table.excluded_rows_without_unit = count(columns::EXCLUDED_ROWS_WITHOUT_UNIT)?;
@@ -224,6 +233,21 @@ pub fn stats_table(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<StatsTabl
                 var = var.max(0.0);
             }
             out.columns.insert(c.column.clone(), Moments { n, mean, var });
+            if with_third && out.segment.is_none() && third_moments.contains(&c.column.as_str()) {
+                let m3_col = columns::stat(&c.column, Stat::M3);
+                match number(row, &m3_col)? {
+                    Some(m3) if !m3.is_finite() => {
+                        return Err(at(&m3_col, format!("{m3} is not a finite third moment")));
+                    }
+                    Some(m3) => {
+                        out.third_moments.insert(c.column.clone(), m3);
+                    }
+                    None if n > 0 => {
+                        return Err(at(&m3_col, "empty, but the column has values".to_string()));
+                    }
+                    None => {}
+                }
+            }
         }
         for c in &plan.covariances {
             let cov = number(row, &c.name)?.unwrap_or(f64::NAN);
@@ -398,20 +422,29 @@ fn parse_json(text: &str) -> Result<Vec<NamedRow>, String> {
         .collect()
 }
 
-/// Checks that a statistics table comes from this plan: same fingerprint, same layout.
-pub fn check_fingerprint(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<()> {
-    let want = crate::plan::fingerprint(plan);
+/// Checks that a statistics table comes from this plan: same fingerprint, a layout this plumb
+/// reads (the current one, or an older one down to [`crate::plan::OLDEST_STATS_LAYOUT`], whose
+/// fingerprint is then the one that layout computed). Returns the table's layout.
+pub fn check_fingerprint(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<u32> {
+    use crate::plan::{OLDEST_STATS_LAYOUT, STATS_LAYOUT};
     if rows.is_empty() {
         return Err(Error::data("the statistics table has no rows"));
     }
+    let mut found: Option<u32> = None;
     for row in rows {
         let row: NamedRow = row
             .iter()
             .map(|(k, v)| (k.to_ascii_lowercase(), v.clone()))
             .collect();
-        match row.get(columns::LAYOUT) {
-            Some(Cell::Number(x)) if *x == f64::from(crate::plan::STATS_LAYOUT) => {}
-            Some(Cell::Text(t)) if t.trim().parse::<f64>() == Ok(f64::from(crate::plan::STATS_LAYOUT)) => {}
+        let readable = |x: f64| (OLDEST_STATS_LAYOUT..=STATS_LAYOUT).find(|l| f64::from(*l) == x);
+        let layout = match row.get(columns::LAYOUT) {
+            Some(Cell::Number(x)) if readable(*x).is_some() => readable(*x).unwrap_or(STATS_LAYOUT),
+            Some(Cell::Text(t)) if t.trim().parse::<f64>().ok().and_then(readable).is_some() => t
+                .trim()
+                .parse::<f64>()
+                .ok()
+                .and_then(readable)
+                .unwrap_or(STATS_LAYOUT),
             None => {
                 return Err(Error::data(
                     "the statistics table has no plumb_layout column: it was not produced by `plumb sql`",
@@ -419,11 +452,11 @@ pub fn check_fingerprint(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<()>
             }
             Some(other) => {
                 return Err(Error::data(format!(
-                    "the statistics table has layout {other:?}, this plumb reads layout {}; re-run the query from `plumb sql`",
-                    crate::plan::STATS_LAYOUT
+                    "the statistics table has layout {other:?}, this plumb reads layouts {OLDEST_STATS_LAYOUT} to {STATS_LAYOUT}; re-run the query from `plumb sql`"
                 )));
             }
-        }
+        };
+        let want = crate::plan::fingerprint_at(plan, layout);
         let got = match row.get(columns::FINGERPRINT) {
             Some(Cell::Text(t)) => t.clone(),
             Some(Cell::Number(x)) => x.to_string(),
@@ -435,8 +468,12 @@ pub fn check_fingerprint(plan: &ExperimentPlan, rows: &[NamedRow]) -> Result<()>
                 plan.experiment
             )));
         }
+        found = Some(found.unwrap_or(layout));
+        if found != Some(layout) {
+            return Err(Error::data("the statistics table mixes rows of two layouts"));
+        }
     }
-    Ok(())
+    Ok(found.unwrap_or(STATS_LAYOUT))
 }
 
 #[cfg(test)]

@@ -410,8 +410,38 @@ fn push_aggregate(
     });
 }
 
-/// Version of the statistics table's column layout (see README, "Statistics table").
-pub const STATS_LAYOUT: u32 = 1;
+/// Version of the statistics table's column layout (see README, "Statistics table"). Layout 2
+/// added the third moments (`<column>__m3`, see [`third_moment_columns`]); tables of layout 1
+/// are still read (the heavy-tails check then does not run).
+pub const STATS_LAYOUT: u32 = 2;
+
+/// The oldest statistics layout this plumb still reads.
+pub const OLDEST_STATS_LAYOUT: u32 = 1;
+
+/// The per-unit columns whose third central moment the statistics table carries (overall rows
+/// only): the columns of metrics analysed as a mean of a per-unit value, except 0/1 columns
+/// (whose skewness follows from the rate, and whose small samples the exact methods handle).
+/// The heavy-tails check reads the skewness of these.
+pub fn third_moment_columns(plan: &ExperimentPlan) -> Vec<&str> {
+    let binary = |column: &str| {
+        plan.scans.iter().flat_map(|s| &s.aggregates).any(|a| {
+            a.column == column && matches!(a.aggregation, Aggregation::Any | Aggregation::AtLeast(_))
+        })
+    };
+    let wanted: std::collections::BTreeSet<&str> = plan
+        .metrics
+        .iter()
+        .filter_map(|m| match &m.kind {
+            PlannedKind::Mean { column } if !binary(column) => Some(column.as_str()),
+            _ => None,
+        })
+        .collect();
+    plan.columns
+        .iter()
+        .map(|c| c.column.as_str())
+        .filter(|c| wanted.contains(c))
+        .collect()
+}
 
 fn source_text(source: &Source) -> String {
     match source {
@@ -439,11 +469,17 @@ fn kind_text(kind: &PlannedKind) -> String {
 /// (README, "Statistics table"): change it only together with [`STATS_LAYOUT`] or with a note
 /// that exported tables must be recomputed. Dialects do not enter it.
 pub fn canonical_text(plan: &ExperimentPlan) -> String {
+    canonical_text_at(plan, STATS_LAYOUT)
+}
+
+/// [`canonical_text`] as statistics layout `layout` wrote it (the text differs only in its
+/// first line), so that a table exported under an older layout is still recognised.
+pub fn canonical_text_at(plan: &ExperimentPlan, layout: u32) -> String {
     use std::fmt::Write as _;
     let expr = |e: &Option<Expr>| e.as_ref().map(|e| e.to_string()).unwrap_or_default();
     let x = &plan.exposures;
     let mut text = String::new();
-    let _ = writeln!(text, "plumb readout query, layout {STATS_LAYOUT}");
+    let _ = writeln!(text, "plumb readout query, layout {layout}");
     let _ = writeln!(text, "experiment {}", plan.experiment);
     let _ = writeln!(
         text,
@@ -538,8 +574,13 @@ pub fn canonical_text(plan: &ExperimentPlan) -> String {
 /// another plumb layout gives another fingerprint, so a statistics table exported from a
 /// warehouse can be matched to the query that produced it.
 pub fn fingerprint(plan: &ExperimentPlan) -> String {
+    fingerprint_at(plan, STATS_LAYOUT)
+}
+
+/// [`fingerprint`] as statistics layout `layout` computed it.
+pub fn fingerprint_at(plan: &ExperimentPlan, layout: u32) -> String {
     let mut hash: u64 = 0xcbf2_9ce4_8422_2325;
-    for b in canonical_text(plan).bytes() {
+    for b in canonical_text_at(plan, layout).bytes() {
         hash ^= u64::from(b);
         hash = hash.wrapping_mul(0x0000_0100_0000_01b3);
     }

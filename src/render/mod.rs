@@ -545,8 +545,29 @@ impl Dialect {
         }
         let mut caps = Vec::new();
         let mut columns = Vec::new();
+        let third = crate::plan::third_moment_columns(plan);
+        let mut third_moments = Vec::new();
         for c in &plan.columns {
             let scan = &plan.scans[c.scan].name;
+            let m3 = third.contains(&c.column.as_str()).then(|| {
+                let centre = self.ident(&columns::centre(&c.column));
+                let col = self.ident(&c.column);
+                let d = format!("(CAST({col} AS {}) - {centre})", self.caps.float_type);
+                let cube = format!("avg({d} * {d} * {d})");
+                // Overall rows only: every segment column rolled up.
+                let sql = if plan.segments.is_empty() {
+                    cube
+                } else {
+                    let overall: Vec<String> = plan
+                        .segments
+                        .iter()
+                        .map(|s| format!("GROUPING({}) = 1", self.ident(&s.column)))
+                        .collect();
+                    format!("CASE WHEN {} THEN {cube} END", overall.join(" AND "))
+                };
+                third_moments.push(context! { column => col, centre => centre });
+                context! { name => self.ident(&columns::stat(&c.column, columns::Stat::M3)), sql => sql }
+            });
             let col = self.ident(&c.column);
             let capped = match c.cap {
                 None => format!("r.{col}"),
@@ -577,6 +598,7 @@ impl Dialect {
                 n => self.ident(&columns::stat(&c.column, columns::Stat::N)),
                 mean => self.ident(&columns::stat(&c.column, columns::Stat::Mean)),
                 var => self.ident(&columns::stat(&c.column, columns::Stat::Var)),
+                m3 => m3,
             });
         }
         let mut covariances = Vec::new();
@@ -632,6 +654,7 @@ impl Dialect {
             columns => columns,
             caps => caps,
             covariances => covariances,
+            third_moments => third_moments,
             segments => segments,
             exposure_segments => exposure_segments,
             attribute_segments => attribute_segments,

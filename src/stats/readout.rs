@@ -21,6 +21,9 @@ pub struct ArmRow {
     pub columns: BTreeMap<String, Moments>,
     /// Covariance column name (see `plan::covariance_name`) -> sample covariance.
     pub covariances: BTreeMap<String, f64>,
+    /// Per-unit column -> third central moment (population form), for the columns of
+    /// `plan::third_moment_columns` on overall rows.
+    pub third_moments: BTreeMap<String, f64>,
 }
 
 /// The whole statistics table: one row per arm, plus the exclusion counts.
@@ -30,6 +33,9 @@ pub struct StatsTable {
     pub excluded_multiple_arms: u64,
     pub excluded_missing_arm: u64,
     pub excluded_rows_without_unit: u64,
+    /// Whether the table carries third moments (statistics layout 2 and later): without them
+    /// the heavy-tails check cannot run.
+    pub third_moments: bool,
 }
 
 /// What the readout needs to know about the experiment besides the numbers.
@@ -652,12 +658,17 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
         assumptions: assumptions(spec),
         cautions,
         trust_checks,
-        trust_checks_run: TRUST_CHECKS.to_vec(),
+        trust_checks_run: TRUST_CHECKS
+            .iter()
+            .copied()
+            .filter(|c| *c != "heavy_tails" || table.third_moments)
+            .collect(),
     }
 }
 
 /// Every automatic trust check, in the order they run.
 pub const TRUST_CHECKS: &[&str] = &[
+    "heavy_tails",
     "pre_period_imbalance",
     "segment_sample_ratio",
     "false_positive_risk",
@@ -676,6 +687,11 @@ pub const MIN_DAYS: f64 = 7.0;
 
 /// The automatic trust checks of a readout; each flag also becomes a plain-words caution.
 ///
+/// - Heavy tails: the skewness g₁ of each mean metric's per-unit values in each arm (from the
+///   third moment the statistics table carries); an arm with fewer than 355·g₁² units
+///   (Kohavi, Deng, Longbotham & Xu 2014, rule 7; see [`super::HEAVY_TAIL_FACTOR`]) is
+///   flagged, once per metric at its worst arm. 0/1 metrics are left to the exact methods'
+///   rule, ratio metrics are not checked. Not run on statistics tables of layout 1.
 /// - Pre-period imbalance: Welch's t on each CUPED covariate (the metric's own value before
 ///   exposure) between control and each arm; randomisation makes the arms alike before
 ///   exposure, so p < 0.001 points at broken assignment or a covariate window that overlaps
@@ -700,6 +716,49 @@ fn trust_checks(
 ) -> Vec<TrustCheck> {
     let mut out = Vec::new();
     let overall = |arm: &str| table.rows.iter().find(|r| r.arm == arm && r.segment.is_none());
+    // Heavy tails.
+    if !table.third_moments {
+        cautions.push("Heavy tails not checked: this statistics table has no third moments (layout 1, exported by an older plumb). Re-run the SQL that `plumb sql` prints now to include them.".into());
+    }
+    let mut skewed = Vec::new();
+    for m in spec.metrics.iter().filter(|m| !m.binary) {
+        let MetricShape::Mean { column } = &m.kind else {
+            continue;
+        };
+        // (arm, units with a value, skewness, units needed) of the worst arm, the first on ties.
+        let worst = spec
+            .arms
+            .iter()
+            .filter_map(|(arm, _)| {
+                let row = overall(arm)?;
+                let moments = row.columns.get(column)?;
+                let g = super::skewness(moments, *row.third_moments.get(column)?)?;
+                let needed = super::HEAVY_TAIL_FACTOR * g * g;
+                (needed > moments.n as f64).then_some((arm, moments.n, g, needed))
+            })
+            .reduce(|a, b| if b.3 / b.1 as f64 > a.3 / a.1 as f64 { b } else { a });
+        if let Some((arm, n, g, needed)) = worst {
+            skewed.push(format!(
+                "{} (skewness {g:.1} in {arm}: about {} units per arm needed, {} there)",
+                m.name,
+                crate::output::count(needed.ceil() as u64),
+                crate::output::count(n)
+            ));
+            out.push(TrustCheck {
+                check: "heavy_tails",
+                subject: format!("{} ({arm})", m.name),
+                p_value: None,
+                value: Some(g),
+            });
+        }
+    }
+    if !skewed.is_empty() {
+        let (one, many) = (skewed.len() == 1, skewed.join("; "));
+        cautions.push(format!(
+            "Heavy tails: {many}. A mean is near-normal only from about 355 × skewness² units per arm (Kohavi et al. 2014), so {} may be off, most where arms differ in size (with equal arms much of the skew cancels in the difference). Capping the per-unit value (winsorize) or a longer run helps.",
+            if one { "its p-value and interval ends" } else { "their p-values and interval ends" }
+        ));
+    }
     // Pre-period imbalance.
     for m in &spec.metrics {
         let columns: Vec<&str> = match &m.covariate {
@@ -1523,6 +1582,7 @@ mod tests {
                 })
                 .collect(),
             covariances: BTreeMap::new(),
+            third_moments: BTreeMap::new(),
         };
         StatsTable {
             rows: vec![arm("control", &|c| c.1), arm("treatment", &|c| c.2)],
@@ -1722,7 +1782,64 @@ mod tests {
                 .iter()
                 .any(|c| c.starts_with("Pre-period imbalance: before exposure, a"))
         );
-        assert_eq!(r.trust_checks_run, TRUST_CHECKS);
+        // A table without third moments (statistics layout 1) cannot run the heavy-tails check.
+        assert_eq!(r.trust_checks_run, &TRUST_CHECKS[1..]);
+        t.third_moments = true;
+        assert_eq!(build(&s, &t).trust_checks_run, TRUST_CHECKS);
+    }
+
+    /// Skewness 4.003 (m₃ = 4, variance 1 in the n − 1 form) asks for 355 × 4.003² = 5,689 units
+    /// per arm: 2,000 are flagged, 6,000 are not; a symmetric column never is, and a 0/1 metric
+    /// is left to the exact methods' rule.
+    #[test]
+    fn heavy_tails_are_flagged_below_355_skewness_squared() {
+        for (n, flagged) in [(2000u64, true), (6000, false)] {
+            let s = spec(vec![
+                metric("spend", Role::Primary, false),
+                metric("even", Role::Secondary, false),
+            ]);
+            let mut t = table(&[
+                ("spend", (n, 1.0, 1.0), (n, 1.0, 1.0)),
+                ("even", (n, 1.0, 1.0), (n, 1.0, 1.0)),
+            ]);
+            t.third_moments = true;
+            for row in &mut t.rows {
+                row.third_moments.insert("spend".into(), 4.0);
+                row.third_moments.insert("even".into(), 0.0);
+            }
+            let r = build(&s, &t);
+            let flags: Vec<&TrustCheck> = r
+                .trust_checks
+                .iter()
+                .filter(|c| c.check == "heavy_tails")
+                .collect();
+            assert_eq!(flags.len(), usize::from(flagged), "n = {n}: {flags:?}");
+            if flagged {
+                assert_eq!(flags[0].subject, "spend (control)");
+                let g = flags[0].value.unwrap();
+                let want = 4.0 / ((n - 1) as f64 / n as f64).powf(1.5);
+                assert!((g - want).abs() < 1e-12, "{g} vs {want}");
+                assert!(
+                    r.cautions.iter().any(|c| c.starts_with(
+                        "Heavy tails: spend (skewness 4.0 in control: about 5,689 units per arm needed, 2,000 there). A mean"
+                    )),
+                    "{:?}",
+                    r.cautions
+                );
+            }
+        }
+        let s = spec(vec![metric("bought", Role::Primary, true)]);
+        let mut t = table(&[("bought", (100, 0.01, 0.0099), (100, 0.01, 0.0099))]);
+        t.third_moments = true;
+        for row in &mut t.rows {
+            row.third_moments.insert("bought".into(), 0.0097);
+        }
+        assert!(
+            build(&s, &t)
+                .trust_checks
+                .iter()
+                .all(|c| c.check != "heavy_tails")
+        );
     }
 
     #[test]
