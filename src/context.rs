@@ -30,25 +30,91 @@ pub enum EngineChoice {
     /// A PostgreSQL server (connection settings already completed by the caller).
     #[cfg(feature = "postgres")]
     Postgres(Box<postgres::Config>),
+    /// A command-line client (a named engine with `command:`).
+    Command(Box<crate::engines::CommandSpec>),
+    /// `--engine NAME`: one of plumb.yaml's `engines:`, resolved when the context opens.
+    Named(String),
+    /// No `--engine`: plumb.yaml's `default_engine:`, else the local DuckDB.
+    Default,
 }
 
 impl EngineChoice {
     /// Who will compute the numbers, for messages.
-    pub fn describe(&self) -> &'static str {
+    pub fn describe(&self) -> String {
         match self {
-            EngineChoice::Local => "local DuckDB",
+            EngineChoice::Local => "local DuckDB".into(),
             #[cfg(feature = "postgres")]
-            EngineChoice::Postgres(_) => "PostgreSQL",
+            EngineChoice::Postgres(_) => "PostgreSQL".into(),
+            EngineChoice::Command(c) => {
+                format!("engine `{}` ({}, {} dialect)", c.name, c.argv[0], c.dialect)
+            }
+            EngineChoice::Named(n) => format!("engine `{n}`"),
+            EngineChoice::Default => "the default engine".into(),
         }
     }
 
     /// The dialect the engine speaks (known before connecting).
-    pub fn dialect(&self) -> &'static str {
+    pub fn dialect(&self) -> &str {
         match self {
-            EngineChoice::Local => "duckdb",
+            EngineChoice::Local | EngineChoice::Named(_) | EngineChoice::Default => "duckdb",
             #[cfg(feature = "postgres")]
             EngineChoice::Postgres(_) => "postgres",
+            EngineChoice::Command(c) => &c.dialect,
         }
+    }
+
+    /// A named engine or the default one, looked up in `engines`; `url` turns a `url:` engine
+    /// into a connection (the command line completes it from the environment).
+    fn resolve(self, engines: &crate::engines::Engines, url: UrlEngine) -> Result<EngineChoice> {
+        use crate::engines::EngineSpec;
+        let name = match self {
+            EngineChoice::Named(n) => n,
+            EngineChoice::Default => match &engines.default {
+                Some(n) => n.clone(),
+                None => return Ok(EngineChoice::Local),
+            },
+            other => return Ok(other),
+        };
+        match engines.get(&name) {
+            Some(EngineSpec::Duckdb) => Ok(EngineChoice::Local),
+            Some(EngineSpec::Url { url: u, .. }) => url(u),
+            Some(EngineSpec::Command(c)) => Ok(EngineChoice::Command(Box::new(c.clone()))),
+            None if name == "local" => Ok(EngineChoice::Local),
+            None => {
+                let names: Vec<&str> = engines.named.iter().map(|(n, _)| n.as_str()).collect();
+                let hint = did_you_mean(&name, names.iter().copied()).unwrap_or_else(|| {
+                    if names.is_empty() {
+                        "plumb.yaml declares no `engines:`; `local` is the local DuckDB, and --engine also takes a postgres:// URL".into()
+                    } else {
+                        format!("engines in plumb.yaml: {} (and `local`)", names.join(", "))
+                    }
+                });
+                Err(Error::usage(format!("unknown engine `{name}`; {hint}")))
+            }
+        }
+    }
+}
+
+/// Turns a PostgreSQL URL into an engine choice.
+pub type UrlEngine = fn(&str) -> Result<EngineChoice>;
+
+/// The URL as written, without the environment (the command line passes its own).
+fn url_as_written(url: &str) -> Result<EngineChoice> {
+    #[cfg(feature = "postgres")]
+    {
+        let config: postgres::Config = url.parse().map_err(|e| {
+            Error::usage(format!(
+                "not a PostgreSQL URL ({e}); write postgres://USER@HOST:PORT/DB"
+            ))
+        })?;
+        Ok(EngineChoice::Postgres(Box::new(config)))
+    }
+    #[cfg(not(feature = "postgres"))]
+    {
+        let _ = url;
+        Err(Error::usage(
+            "this plumb was built without the `postgres` feature",
+        ))
     }
 }
 
@@ -59,6 +125,8 @@ pub struct Options {
     pub engine: EngineChoice,
     /// Where the local engine spills when `local.temp_directory` is not set.
     pub spill_dir: Option<PathBuf>,
+    /// How a named engine's `url:` becomes a connection.
+    pub url_engine: UrlEngine,
 }
 
 impl Default for Options {
@@ -67,6 +135,7 @@ impl Default for Options {
             dialects_dir: None,
             engine: EngineChoice::Local,
             spill_dir: None,
+            url_engine: url_as_written,
         }
     }
 }
@@ -105,9 +174,14 @@ impl Context {
         *self.progress.borrow_mut() = Some(Box::new(f));
     }
 
-    /// Who computes the numbers: `local DuckDB`, `PostgreSQL`.
-    pub fn engine_name(&self) -> &'static str {
+    /// Who computes the numbers: `local DuckDB`, `PostgreSQL`, `engine \`spark\` (...)`.
+    pub fn engine_name(&self) -> String {
         self.choice.describe()
+    }
+
+    /// The engine the context runs on.
+    pub fn engine_choice(&self) -> &EngineChoice {
+        &self.choice
     }
 
     /// Reports a step to the progress callback, if any.
@@ -118,9 +192,17 @@ impl Context {
     }
 
     /// Loads and resolves the workspace in `dir` (catalog errors: [`crate::ErrorKind::Catalog`]).
-    pub fn open(dir: &Path, options: Options) -> Result<Context> {
+    pub fn open(dir: &Path, mut options: Options) -> Result<Context> {
         let mut sources = SourceMap::new();
         let mut loaded = crate::timing::stage("load workspace", || workspace::load(dir, &mut sources))?;
+        // A named engine is looked up now; when plumb.yaml itself has errors, they are what
+        // the user needs to see, so the lookup waits for them to be fixed.
+        let choice = std::mem::replace(&mut options.engine, EngineChoice::Local);
+        options.engine = match choice.resolve(&loaded.engines, options.url_engine) {
+            Ok(c) => c,
+            Err(_) if loaded.diagnostics.iter().any(Diagnostic::is_error) => EngineChoice::Local,
+            Err(e) => return Err(e),
+        };
         if loaded.local.settings.temp_directory.is_none() {
             loaded.local.settings.temp_directory = options.spill_dir.clone();
         }
@@ -354,6 +436,7 @@ impl Context {
         check_segment_sizes(&table, options.max_segment_values)?;
         let spec = compile::readout_spec(catalog, experiment, &plan, options);
         let mut readout = crate::stats::readout::build(&spec, &table);
+        readout.computed_on = Some(self.engine_name());
         self.add_daily_sample_ratio(&plan, &dialect, &mut readout)?;
         if options.population_impact {
             self.add_population_impact(catalog, experiment, &table, &dialect, &mut readout)?;
@@ -375,7 +458,13 @@ impl Context {
         let table = execute::stats_table(&plan, &rows)?;
         check_segment_sizes(&table, options.max_segment_values)?;
         let spec = compile::readout_spec(self.catalog(), experiment, &plan, options);
-        Ok(crate::stats::readout::build(&spec, &table))
+        let mut readout = crate::stats::readout::build(&spec, &table);
+        let name = file.file_name().map_or_else(
+            || file.display().to_string(),
+            |n| n.to_string_lossy().into_owned(),
+        );
+        readout.computed_on = Some(format!("statistics file {name}"));
+        Ok(readout)
     }
 
     /// The per-day sample-ratio check: one small query over the exposure log (arms per day of
@@ -401,11 +490,17 @@ impl Context {
                     .find(|(name, _)| name.eq_ignore_ascii_case(k))
                     .map(|(_, v)| v)
             };
-            let (Some(day), Some(arm), Some(execute::Cell::Number(n))) =
-                (text(get("exposure_day")), text(get("arm")), get("units"))
-            else {
+            let units = execute::cell_number(get("units"))
+                .map_err(|e| Error::data(format!("the per-day arms query returned units {e}")))?;
+            if get("exposure_day").is_none() || get("arm").is_none() || get("units").is_none() {
+                return Err(Error::data(
+                    "the per-day arms query returned no exposure_day, arm or units column",
+                ));
+            }
+            let (Some(day), Some(arm), Some(n)) = (text(get("exposure_day")), text(get("arm")), units) else {
                 continue;
             };
+            let n = &n;
             // `2026-03-02 00:00:00` (or with a zone) is shown as its date.
             let day = if day.len() >= 10 && day.as_bytes()[4] == b'-' {
                 day[..10].to_string()
@@ -457,14 +552,15 @@ impl Context {
         let mut population = BTreeMap::new();
         for (metric, _, column) in &plan.metrics {
             let total = match row.get(&column.to_ascii_lowercase()) {
-                Some(execute::Cell::Number(x)) => *x,
-                // No event in the period: the total is zero.
-                Some(execute::Cell::Null) => 0.0,
-                _ => {
+                None => {
                     return Err(Error::data(format!(
-                        "the total of `{metric}` is missing or not a number"
+                        "the totals query returned no total of `{metric}`"
                     )));
                 }
+                // No event in the period (NULL): the total is zero.
+                cell => execute::cell_number(cell)
+                    .map_err(|e| Error::data(format!("the total of `{metric}`: {e}")))?
+                    .unwrap_or(0.0),
             };
             population.insert(metric.clone(), total / days);
         }
@@ -626,5 +722,7 @@ fn open_engine(choice: &EngineChoice, ws: &Workspace) -> Result<Box<dyn Engine>>
         }
         #[cfg(feature = "postgres")]
         EngineChoice::Postgres(config) => Ok(Box::new(execute::postgres::PostgresEngine::connect(config)?)),
+        EngineChoice::Command(spec) => Ok(Box::new(execute::command::CommandEngine::new((**spec).clone()))),
+        EngineChoice::Named(_) | EngineChoice::Default => Err(Error::bug("an engine name was not resolved")),
     }
 }

@@ -23,6 +23,7 @@ pub mod context;
 pub mod demo;
 pub mod diagnostics;
 pub mod diff;
+pub mod engines;
 pub mod error;
 pub mod execute;
 pub mod ir;

@@ -40,12 +40,12 @@ fn text(row: &NamedRow, col: &str) -> Option<String> {
     }
 }
 
-fn number(row: &NamedRow, col: &str) -> f64 {
-    match row.get(col) {
-        Some(Cell::Number(x)) => *x,
-        Some(Cell::Text(t)) => t.parse().unwrap_or(0.0),
-        _ => 0.0,
-    }
+/// A number cell of a report row; NULL (no events) is 0, anything else that is not a number
+/// is an error, never a silent 0.
+fn number(row: &NamedRow, col: &str) -> Result<f64> {
+    crate::execute::cell_number(row.get(col))
+        .map(|x| x.unwrap_or(0.0))
+        .map_err(|e| Error::data(format!("report column `{col}`: {e}")))
 }
 
 /// Period start of a result cell: seconds since the epoch or an ISO text.
@@ -79,7 +79,7 @@ pub fn assemble(plan: &ReportPlan, rows: &[NamedRow]) -> Result<Vec<ReportRow>> 
         cells
             .entry((metric, segment, period(&row)?))
             .or_default()
-            .insert(part, (number(&row, "units") as u64, number(&row, "total")));
+            .insert(part, (number(&row, "units")? as u64, number(&row, "total")?));
     }
     if segment_values.is_empty() || plan.segment.is_none() {
         segment_values = vec![None];

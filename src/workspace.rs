@@ -58,6 +58,8 @@ pub struct Workspace {
     pub local_settings: LocalSettings,
     /// Number of catalog files read.
     pub files: usize,
+    /// Named engines (`engines:`) and the default one.
+    pub engines: crate::engines::Engines,
 }
 
 /// The outcome of opening a workspace: diagnostics are rendered by the caller.
@@ -118,12 +120,15 @@ pub struct Loaded {
     pub diagnostics: Vec<Diagnostic>,
     pub local: LocalData,
     pub files: usize,
+    /// `engines:` and `default_engine:`, checked (their errors are in `diagnostics`).
+    pub engines: crate::engines::Engines,
 }
 
 /// Reads `plumb.yaml` in `dir` and the catalog files (the load stage).
 pub fn load(dir: &Path, sources: &mut SourceMap) -> Result<Loaded> {
-    let (raw_ws, raw_catalog, diagnostics) =
+    let (raw_ws, raw_catalog, mut diagnostics) =
         load::load_workspace(dir, sources).map_err(|e| Error::usage(e.to_string()))?;
+    let engines = crate::engines::read(&raw_ws, &mut diagnostics);
     let files = sources.files().count().saturating_sub(1);
     let local = raw_ws.value.local.clone().unwrap_or_default();
     let local = LocalData {
@@ -144,6 +149,7 @@ pub fn load(dir: &Path, sources: &mut SourceMap) -> Result<Loaded> {
         diagnostics,
         local,
         files,
+        engines,
     })
 }
 
@@ -181,6 +187,7 @@ impl Loaded {
             mut diagnostics,
             local,
             files,
+            engines,
         } = self;
         let catalog = match resolve::resolve_with_schemas(sources, &raw_catalog, schemas) {
             Ok(c) => Some(c),
@@ -223,6 +230,7 @@ impl Loaded {
                 local_tables: local.tables,
                 local_settings: local.settings,
                 files,
+                engines,
             }),
             diagnostics,
         )

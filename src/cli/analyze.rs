@@ -32,11 +32,16 @@ pub struct AnalyzeArgs {
     /// `plumb sql EXPERIMENT --dialect D`) instead of running SQL locally.
     #[arg(long, value_name = "FILE", conflicts_with = "by")]
     stats: Option<PathBuf>,
-    /// Run the postgres-dialect SQL on a PostgreSQL server instead of the local data:
-    /// `postgres://USER@HOST:PORT/DB`. Missing parts and the password come from PGHOST,
-    /// PGPORT, PGUSER, PGDATABASE, PGPASSWORD or the password file (PGPASSFILE, ~/.pgpass).
-    #[arg(long, value_name = "URL", conflicts_with = "stats")]
+    /// Where the SQL runs: the name of an engine under `engines:` in plumb.yaml, `local` (the
+    /// embedded DuckDB), or a PostgreSQL URL `postgres://USER@HOST:PORT/DB` (missing parts
+    /// and the password come from PGHOST, PGPORT, PGUSER, PGDATABASE, PGPASSWORD or the
+    /// password file). Default: `default_engine:` in plumb.yaml, else local.
+    #[arg(long, value_name = "NAME|URL", conflicts_with = "stats")]
     engine: Option<String>,
+    /// Show how a command engine would be run (its argv and the statement's file, written
+    /// there) without running it.
+    #[arg(long, conflicts_with = "stats")]
+    print_command: bool,
     /// The most values one segment may have (more is usually an id, not a grouping).
     #[arg(long, value_name = "N", default_value_t = crate::compile::MAX_SEGMENT_VALUES)]
     max_segment_values: usize,
@@ -63,6 +68,8 @@ pub struct Settings {
     pub format: Format,
     pub style: crate::output::TextStyle,
     pub source: Source,
+    /// `--print-command`: show the command engine's argv instead of running it.
+    pub print_command: bool,
 }
 
 impl Settings {
@@ -74,12 +81,11 @@ impl Settings {
                 a.prior_success
             )));
         }
-        let source = match (a.stats, a.engine) {
-            (Some(file), _) => Source::StatsFile(file),
-            (None, Some(url)) => Source::Engine(postgres_engine(&url)?),
-            (None, None) => Source::Engine(EngineChoice::Local),
+        let source = match a.stats {
+            Some(file) => Source::StatsFile(file),
+            None => Source::Engine(super::engine_arg(a.engine.as_deref())?),
         };
-        let local = matches!(source, Source::Engine(EngineChoice::Local));
+        let engine_run = matches!(source, Source::Engine(_));
         Ok(Settings {
             experiment: a.experiment,
             by: a.by,
@@ -87,8 +93,9 @@ impl Settings {
                 alpha: a.alpha,
                 cuped: !a.no_cuped,
                 sequential: a.sequential,
-                // Whole-population impact needs the population's data: local runs only, so far.
-                population_impact: local,
+                // Whole-population impact needs the population's event tables: any engine,
+                // never a statistics file.
+                population_impact: engine_run,
                 max_segment_values: a.max_segment_values,
                 max_metrics: a.max_metrics,
                 prior_success: a.prior_success,
@@ -96,20 +103,9 @@ impl Settings {
             format: a.format,
             style: crate::output::TextStyle { wide: a.wide },
             source,
+            print_command: a.print_command,
         })
     }
-}
-
-#[cfg(feature = "postgres")]
-fn postgres_engine(url: &str) -> Result<EngineChoice> {
-    Ok(EngineChoice::Postgres(Box::new(super::pg::config(url)?)))
-}
-
-#[cfg(not(feature = "postgres"))]
-fn postgres_engine(_: &str) -> Result<EngineChoice> {
-    Err(crate::error::Error::usage(
-        "this plumb was built without the `postgres` feature",
-    ))
 }
 
 pub fn run(global: &Global, s: Settings) -> Result<Outcome> {
@@ -118,6 +114,10 @@ pub fn run(global: &Global, s: Settings) -> Result<Outcome> {
             let ctx = global.open(EngineChoice::Local)?;
             let id = ctx.experiment(&s.experiment)?;
             ctx.readout_from_stats_file(id, &file, s.options)?
+        }
+        Source::Engine(choice) if s.print_command => {
+            let ctx = global.open(choice)?;
+            return print_command(&ctx, &s.experiment, &s.by);
         }
         Source::Engine(choice) => {
             let message = format!("running {} on {}", s.experiment, choice.describe());
@@ -144,4 +144,53 @@ pub fn readout_outcome(readout: &Readout, format: Format, style: &crate::output:
         Format::Json => crate::output::readout_json(readout),
     };
     Outcome::stdout(text).with_code(if blocked { EXIT_CHECKS } else { 0 })
+}
+
+/// `--print-command`: the readout statement written where the command engine would read it,
+/// and the argv that would run it (nothing runs).
+fn print_command(ctx: &crate::context::Context, experiment: &str, by: &[String]) -> Result<Outcome> {
+    let crate::context::EngineChoice::Command(spec) = ctx.engine_choice() else {
+        return Err(crate::error::Error::usage(format!(
+            "--print-command shows how a command engine runs; {} is not one (engines with `command:` in plumb.yaml are)",
+            ctx.engine_name()
+        )));
+    };
+    let id = ctx.experiment(experiment)?;
+    let by = ctx.segments(by)?;
+    let dialect = ctx.engine_dialect()?;
+    let (_, sql) = ctx.compile_readout(id, &by, &dialect)?;
+    let file = std::env::temp_dir().join(format!("plumb-{experiment}-readout.sql"));
+    std::fs::write(&file, format!("{sql}\n"))
+        .map_err(|e| crate::error::Error::usage(format!("cannot write {}: {e}", file.display())))?;
+    let engine = crate::execute::command::CommandEngine::new((**spec).clone());
+    let (argv, stdin) = engine.argv(&file.to_string_lossy());
+    let quoted: Vec<String> = argv.iter().map(|a| shell_quote(a)).collect();
+    let mut text = format!(
+        "engine `{}` ({} dialect) would run the readout of {} as:\n  {}{}\nstatement: {}\n",
+        spec.name,
+        spec.dialect,
+        experiment,
+        quoted.join(" "),
+        if stdin { " < statement" } else { "" },
+        file.display()
+    );
+    text.push_str("and read its stdout as ");
+    text.push_str(match spec.output {
+        crate::engines::Output::Csv => "CSV",
+        crate::engines::Output::Tsv => "tab-separated values",
+    });
+    text.push_str(" with a header row (then the per-day arms and the population totals, one run each).\n");
+    Ok(Outcome::stdout(text))
+}
+
+/// A word as a POSIX shell would need it, for showing a command (plumb runs argv directly).
+fn shell_quote(a: &str) -> String {
+    if !a.is_empty()
+        && a.chars()
+            .all(|c| c.is_ascii_alphanumeric() || "-_./=:,@%+{}[]".contains(c))
+    {
+        a.to_string()
+    } else {
+        format!("'{}'", a.replace('\'', "'\\''"))
+    }
 }

@@ -31,9 +31,13 @@ pub struct DiffArgs {
     /// Dialect of the SQL diff (default: the workspace's).
     #[arg(long)]
     dialect: Option<String>,
-    /// Also run both versions on the local data and compare the numbers.
+    /// Also run both versions on the data and compare the numbers.
     #[arg(long)]
     data: bool,
+    /// Where `--data` runs the SQL: an engine under `engines:` in plumb.yaml, `local`, or a
+    /// postgres:// URL (default: `default_engine:`, else local).
+    #[arg(long, value_name = "NAME|URL", requires = "data")]
+    engine: Option<String>,
     #[arg(long, value_enum, default_value = "table")]
     format: DiffFormat,
     /// Exit with 4 when definitions changed (default: 0 whatever the diff shows, like
@@ -60,7 +64,11 @@ pub fn run(global: &Global, a: DiffArgs) -> Result<Outcome> {
     // The resolved working tree: the head side by default, and the data for `--data`.
     let progress = super::Progress::start("reading both revisions");
     let ctx = match a.head.is_none() || a.data {
-        true => Some(global.open(EngineChoice::Local)?),
+        true => Some(global.open(if a.data {
+            super::engine_arg(a.engine.as_deref())?
+        } else {
+            EngineChoice::Local
+        })?),
         false => None,
     };
     if let Some(c) = &ctx {

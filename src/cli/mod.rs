@@ -170,6 +170,7 @@ impl Global {
                 engine,
                 // The system's temporary folder (TMPDIR): reading the environment is ours.
                 spill_dir: Some(std::env::temp_dir().join(format!("plumb-spill-{}", std::process::id()))),
+                url_engine: postgres_engine,
             },
         )
     }
@@ -177,6 +178,32 @@ impl Global {
     fn open(&self, engine: EngineChoice) -> Result<Context> {
         self.open_at(&self.workspace, engine)
     }
+}
+
+/// The engine of `--engine ARG`: a PostgreSQL URL (`postgres://...`), the name of one of
+/// plumb.yaml's `engines:` (or `local`), or without the flag the workspace's default engine.
+pub fn engine_arg(arg: Option<&str>) -> Result<EngineChoice> {
+    match arg {
+        None => Ok(EngineChoice::Default),
+        Some(a) if a.contains("://") => postgres_engine(a),
+        Some(a) if a.trim().is_empty() => Err(crate::error::Error::usage(
+            "--engine needs the name of an engine in plumb.yaml, `local`, or a postgres:// URL",
+        )),
+        Some(a) => Ok(EngineChoice::Named(a.to_string())),
+    }
+}
+
+/// A PostgreSQL URL, completed from libpq's environment variables and password file.
+#[cfg(feature = "postgres")]
+fn postgres_engine(url: &str) -> Result<EngineChoice> {
+    Ok(EngineChoice::Postgres(Box::new(pg::config(url)?)))
+}
+
+#[cfg(not(feature = "postgres"))]
+fn postgres_engine(_: &str) -> Result<EngineChoice> {
+    Err(crate::error::Error::usage(
+        "this plumb was built without the `postgres` feature",
+    ))
 }
 
 /// One piece of a command's output, in order.

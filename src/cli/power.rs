@@ -2,7 +2,6 @@
 //! metric's variance and the traffic measured from history by the readout SQL itself.
 
 use super::{Format, Global, Outcome};
-use crate::context::EngineChoice;
 use crate::error::{Error, Result};
 use crate::output::power::PowerReport;
 use crate::stats::power::{Target, study};
@@ -11,6 +10,10 @@ use crate::time::Timestamp;
 #[derive(Debug, clap::Args)]
 pub struct PowerArgs {
     metric: String,
+    /// Where the SQL runs: an engine under `engines:` in plumb.yaml, `local`, or a
+    /// postgres:// URL (default: `default_engine:`, else local).
+    #[arg(long, value_name = "NAME|URL")]
+    engine: Option<String>,
     /// Smallest relative change worth detecting: `2%` or `0.02`.
     #[arg(long)]
     mde: String,
@@ -55,6 +58,7 @@ pub struct Settings {
     until: Option<String>,
     exposures: Option<String>,
     format: Format,
+    engine: Option<String>,
 }
 
 impl Settings {
@@ -99,12 +103,13 @@ impl Settings {
             until: a.until,
             exposures: a.exposures,
             format: a.format,
+            engine: a.engine,
         })
     }
 }
 
 pub fn run(global: &Global, s: Settings) -> Result<Outcome> {
-    let ctx = global.open(EngineChoice::Local)?;
+    let ctx = global.open(super::engine_arg(s.engine.as_deref())?)?;
     let catalog = ctx.catalog();
     let metric = ctx.metric(&s.metric)?;
     let unit = catalog.metrics[metric].unit;

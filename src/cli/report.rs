@@ -3,7 +3,7 @@
 //! --report`.
 
 use super::{Global, Outcome};
-use crate::context::{Context, EngineChoice};
+use crate::context::Context;
 use crate::error::{Error, Result};
 use crate::plan::ReportPlan;
 use crate::time::{Grain, Timestamp};
@@ -44,6 +44,10 @@ pub struct ReportWindow {
 pub struct ReportArgs {
     #[arg(required = true)]
     metrics: Vec<String>,
+    /// Where the SQL runs: an engine under `engines:` in plumb.yaml, `local`, or a
+    /// postgres:// URL (default: `default_engine:`, else local).
+    #[arg(long, value_name = "NAME|URL")]
+    engine: Option<String>,
     /// Slice by this segment (an exposure-row segment needs --exposed-in). Comma lists are
     /// accepted like everywhere else; a report slices by one segment at a time.
     #[arg(long, value_name = "SEGMENT", value_delimiter = ',')]
@@ -146,9 +150,10 @@ impl Request {
 pub fn run(global: &Global, args: ReportArgs) -> Result<Outcome> {
     let format = args.format;
     let request = Request::new(args.metrics, args.by, args.window);
-    let ctx = global.open(EngineChoice::Local)?;
+    let ctx = global.open(super::engine_arg(args.engine.as_deref())?)?;
     let plan = request.plan(&ctx)?;
-    let rows = super::with_progress("running the report on local DuckDB", || ctx.report(&plan))?;
+    let message = format!("running the report on {}", ctx.engine_name());
+    let rows = super::with_progress(&message, || ctx.report(&plan))?;
     Ok(Outcome::stdout(match format {
         ReportFormat::Table => crate::report::text_output(&rows),
         ReportFormat::Json => super::json(&rows)?,

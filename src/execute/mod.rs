@@ -8,6 +8,7 @@
 //! the plan asked for came back, so a short or renamed result can never be read as zeros.
 
 pub mod arm_stats;
+pub mod command;
 #[cfg(feature = "engine")]
 pub mod duckdb;
 #[cfg(feature = "postgres")]
@@ -58,6 +59,20 @@ pub trait Engine {
     /// ([`crate::probe`]); `None` where the engine cannot.
     fn binder(&self) -> Option<&dyn crate::probe::Binder> {
         None
+    }
+}
+
+/// A cell as a number: engines return numbers, command engines and files return their text,
+/// parsed here (exactly); `Err` names what the cell holds instead.
+pub fn cell_number(cell: Option<&Cell>) -> std::result::Result<Option<f64>, String> {
+    match cell {
+        None | Some(Cell::Null) => Ok(None),
+        Some(Cell::Number(x)) => Ok(Some(*x)),
+        Some(Cell::Text(t)) => t
+            .trim()
+            .parse::<f64>()
+            .map(Some)
+            .map_err(|_| format!("`{t}` is not a number")),
     }
 }
 

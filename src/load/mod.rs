@@ -306,6 +306,17 @@ fn parse_workspace(
     if let Some(local) = node.get("local") {
         check_keys(file, local, syntax::LOCAL_KEYS, "`local`", diags);
     }
+    if let Some(NodeKind::Map(engines)) = node.get("engines").map(|n| &n.kind) {
+        for (name, _, engine) in engines {
+            check_keys(
+                file,
+                engine,
+                syntax::ENGINE_KEYS,
+                &format!("engine `{name}`"),
+                diags,
+            );
+        }
+    }
     let value = deserialize_item(file, &node, value, diags).unwrap_or_default();
     (Some(node), value)
 }

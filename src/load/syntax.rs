@@ -98,9 +98,51 @@ pub struct WorkspaceFile {
     pub local: Option<LocalData>,
     /// Lint severities: rule code or name -> `off`, `warning` or `error`.
     pub lint: Option<OrderedMap<String>>,
+    /// Named engines: where `--engine NAME` runs the SQL.
+    pub engines: Option<OrderedMap<EngineDecl>>,
+    /// The engine of commands run without `--engine` (default: the local DuckDB).
+    pub default_engine: Option<String>,
 }
 
-pub const WORKSPACE_KEYS: &[&str] = &["catalog", "dialect", "local", "lint"];
+pub const WORKSPACE_KEYS: &[&str] = &["catalog", "dialect", "local", "lint", "engines", "default_engine"];
+pub const ENGINE_KEYS: &[&str] = &[
+    "duckdb",
+    "dialect",
+    "url",
+    "command",
+    "output",
+    "timeout",
+    "description",
+];
+
+/// One named engine under `engines:` in plumb.yaml: the local DuckDB (`duckdb: {}`), a
+/// PostgreSQL server (`url:`), or a command-line client (`command:`) that runs a SQL file and
+/// prints the result with a header.
+#[derive(Debug, Clone, Default, Deserialize, Serialize, JsonSchema)]
+#[schemars(deny_unknown_fields)]
+pub struct EngineDecl {
+    /// The embedded DuckDB over the workspace's `local:` data: `duckdb: {}`.
+    pub duckdb: Option<EmptyMap>,
+    /// The SQL dialect the engine speaks (`postgres`, `spark`, `snowflake`, ...).
+    pub dialect: Option<String>,
+    /// A PostgreSQL connection URL, `postgres://USER@HOST:PORT/DB` (password from the
+    /// environment or the password file, never here).
+    pub url: Option<String>,
+    /// The client's argv, run without a shell; `{sql_file}` is replaced by the path of the
+    /// compiled statement (without it, the statement is written to the client's stdin).
+    pub command: Option<Vec<String>>,
+    /// How the client prints the result on stdout: `csv` (default) or `tsv`, with a header.
+    pub output: Option<String>,
+    /// How long one statement may run before plumb stops the client, e.g. `30m`, `2h`.
+    pub timeout: Option<String>,
+    /// What this engine is, for people.
+    pub description: Option<String>,
+}
+
+/// An empty mapping (`{}`).
+#[derive(Debug, Clone, Default, Deserialize, Serialize, JsonSchema)]
+#[schemars(deny_unknown_fields)]
+pub struct EmptyMap {}
 pub const LOCAL_KEYS: &[&str] = &["database", "tables", "threads", "memory_limit", "temp_directory"];
 
 /// `local:` in `plumb.yaml`: a DuckDB file and/or table name -> CSV/Parquet/JSON path or glob,

@@ -588,6 +588,9 @@ pub fn readout_text(r: &Readout, style: &TextStyle) -> String {
         )),
         None => out.push_str("Sample ratio: not checked\n"),
     }
+    if let Some(on) = &r.computed_on {
+        out.push_str(&format!("Computed on: {on}\n"));
+    }
     let ex = &r.excluded;
     out.push_str(&format!(
         "Excluded units: {} in several arms, {} without arm, {} in unknown arms\n\n",

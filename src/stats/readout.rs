@@ -141,6 +141,10 @@ pub struct Readout {
     /// are not listed. `trust_checks_run` names every check that ran.
     pub trust_checks: Vec<TrustCheck>,
     pub trust_checks_run: Vec<&'static str>,
+    /// Who computed the statistics: `local DuckDB`, `PostgreSQL`, `engine \`spark\` (...)`,
+    /// or `statistics file PATH`.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub computed_on: Option<String>,
 }
 
 /// One flagged trust check.
@@ -658,6 +662,7 @@ pub fn build(spec: &ReadoutSpec, table: &StatsTable) -> Readout {
         assumptions: assumptions(spec),
         cautions,
         trust_checks,
+        computed_on: None,
         trust_checks_run: TRUST_CHECKS
             .iter()
             .copied()
