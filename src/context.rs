@@ -582,25 +582,39 @@ impl Context {
         crate::report::assemble(plan, &self.query(&sql)?)
     }
 
-    /// The first and last exposure time in exposure log `log` (any experiment), on the local
-    /// engine; `None` on other engines or for an empty log.
+    /// The first and last exposure time in exposure log `log` (any experiment), on any
+    /// engine; `None` for an empty log. Locally as seconds since the epoch; elsewhere `min` /
+    /// `max` of the column as the engine prints it (UTC sessions), read back as timestamps.
     pub fn exposure_span(&self, log: ExposureLogId) -> Result<Option<(Timestamp, Timestamp)>> {
-        if !matches!(self.choice, EngineChoice::Local) {
-            return Ok(None);
-        }
         let dialect = self.engine_dialect()?;
         let l = &self.catalog().exposure_logs[log];
         let time = format!("t.{}", dialect.ident(&l.time));
-        let sql = format!(
-            "SELECT CAST(floor(epoch(min({time}))) AS DOUBLE) AS first, CAST(floor(epoch(max({time}))) AS DOUBLE) AS last FROM {} AS t",
-            dialect.source(&l.source)
-        );
-        let rows = self.query(&sql)?;
-        let get = |k: &str| match rows.first().and_then(|r| r.get(k)) {
-            Some(execute::Cell::Number(x)) if x.is_finite() => Some(Timestamp(*x as i64)),
-            _ => None,
+        let sql = if matches!(self.choice, EngineChoice::Local) {
+            format!(
+                "SELECT CAST(floor(epoch(min({time}))) AS DOUBLE) AS first, CAST(floor(epoch(max({time}))) AS DOUBLE) AS last FROM {} AS t",
+                dialect.source(&l.source)
+            )
+        } else {
+            format!(
+                "SELECT min({time}) AS first, max({time}) AS last FROM {} AS t",
+                dialect.source(&l.source)
+            )
         };
-        Ok(get("first").zip(get("last")))
+        self.step("exposure log span");
+        let rows = self.query(&sql)?;
+        let get = |k: &str| -> Result<Option<Timestamp>> {
+            let cell = rows
+                .first()
+                .and_then(|r| r.iter().find(|(n, _)| n.eq_ignore_ascii_case(k)).map(|(_, v)| v));
+            match cell {
+                Some(execute::Cell::Number(x)) if x.is_finite() => Ok(Some(Timestamp(*x as i64))),
+                Some(execute::Cell::Text(t)) => engine_time(t).map(Some).ok_or_else(|| {
+                    Error::data(format!("the exposure log's {k} time `{t}` is not a timestamp"))
+                }),
+                _ => Ok(None),
+            }
+        };
+        Ok(get("first")?.zip(get("last")?))
     }
 
     /// The per-unit mean and sd of `metric` over units of exposure log `log` first exposed in
@@ -655,6 +669,20 @@ impl Context {
             sd,
         })
     }
+}
+
+/// A timestamp as engines print one: `2026-03-02 08:12:33[.123456][+00]`, fractions of a
+/// second dropped (the span is used in whole days).
+fn engine_time(text: &str) -> Option<Timestamp> {
+    let t = text.trim();
+    let t = match t.get(19..).filter(|rest| rest.starts_with('.')) {
+        Some(rest) => {
+            let digits = rest[1..].bytes().take_while(u8::is_ascii_digit).count();
+            format!("{}{}", &t[..19], &rest[1 + digits..])
+        }
+        None => t.to_string(),
+    };
+    Timestamp::parse(t.trim_end_matches(" UTC")).ok()
 }
 
 /// A usage error for an unknown name, with a did-you-mean hint or the list of names.
@@ -724,5 +752,25 @@ fn open_engine(choice: &EngineChoice, ws: &Workspace) -> Result<Box<dyn Engine>>
         EngineChoice::Postgres(config) => Ok(Box::new(execute::postgres::PostgresEngine::connect(config)?)),
         EngineChoice::Command(spec) => Ok(Box::new(execute::command::CommandEngine::new((**spec).clone()))),
         EngineChoice::Named(_) | EngineChoice::Default => Err(Error::bug("an engine name was not resolved")),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn engine_times_read_as_engines_print_them() {
+        let want = Timestamp::parse("2026-03-02T08:12:33Z").unwrap();
+        for t in [
+            "2026-03-02 08:12:33",
+            "2026-03-02 08:12:33.123456",
+            "2026-03-02 08:12:33+00",
+            "2026-03-02 08:12:33.5+00",
+            "2026-03-02T08:12:33Z",
+        ] {
+            assert_eq!(engine_time(t), Some(want), "{t}");
+        }
+        assert_eq!(engine_time("yesterday"), None);
     }
 }
