@@ -336,6 +336,41 @@ fn postgresql_gives_the_same_statistics_and_readouts_as_duckdb() {
             eprintln!("{exp} on engine {engine}: {:.2}s", t.elapsed().as_secs_f64());
         }
     }
+    // A report (whole population, by week) on both engines.
+    let args = [
+        "report",
+        "orders",
+        "revenue",
+        "--grain",
+        "week",
+        "--from",
+        "2026-02-23",
+        "--to",
+        "2026-03-23",
+        "--format",
+        "json",
+    ];
+    let local = plumb(ws, &args);
+    for engine in ["pg", "pgcsv"] {
+        let out = Command::new(env!("CARGO_BIN_EXE_plumb"))
+            .arg("--workspace")
+            .arg(ws)
+            .env("PGTZ", "UTC")
+            .args(args)
+            .args(["--engine", engine])
+            .output()
+            .unwrap();
+        assert!(
+            out.status.success(),
+            "report on {engine}: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        same(
+            &local,
+            &serde_json::from_slice(&out.stdout).unwrap(),
+            &format!("report --engine {engine}"),
+        );
+    }
     // Power from history, with the window bounded by the exposure log, on both engines.
     let args = [
         "power",
