@@ -15,6 +15,25 @@
 use std::path::Path;
 use std::process::Command;
 
+/// `plumb --workspace ws ARGS --engine ENGINE` with PGTZ=UTC (psql's session time zone); its
+/// JSON output, or a panic with its stderr.
+fn plumb_on(ws: &Path, args: &[&str], engine: &str) -> serde_json::Value {
+    let out = Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .arg("--workspace")
+        .arg(ws)
+        .env("PGTZ", "UTC")
+        .args(args)
+        .args(["--engine", engine])
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{args:?} on {engine}: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    serde_json::from_slice(&out.stdout).unwrap()
+}
+
 fn plumb(ws: &Path, args: &[&str]) -> serde_json::Value {
     let out = Command::new(env!("CARGO_BIN_EXE_plumb"))
         .arg("--workspace")
@@ -310,19 +329,7 @@ fn postgresql_gives_the_same_statistics_and_readouts_as_duckdb() {
         let local = strip(plumb(ws, &["analyze", exp, "--format", "json"]));
         for engine in ["pg", "pgcsv"] {
             let t = std::time::Instant::now();
-            let out = Command::new(env!("CARGO_BIN_EXE_plumb"))
-                .arg("--workspace")
-                .arg(ws)
-                .env("PGTZ", "UTC")
-                .args(["analyze", exp, "--format", "json", "--engine", engine])
-                .output()
-                .unwrap();
-            assert!(
-                out.status.success(),
-                "{exp} on {engine}: {}",
-                String::from_utf8_lossy(&out.stderr)
-            );
-            let doc: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+            let doc = plumb_on(ws, &["analyze", exp, "--format", "json"], engine);
             assert!(
                 doc["computed_on"].as_str().unwrap().contains(if engine == "pg" {
                     "PostgreSQL"
@@ -352,22 +359,9 @@ fn postgresql_gives_the_same_statistics_and_readouts_as_duckdb() {
     ];
     let local = plumb(ws, &args);
     for engine in ["pg", "pgcsv"] {
-        let out = Command::new(env!("CARGO_BIN_EXE_plumb"))
-            .arg("--workspace")
-            .arg(ws)
-            .env("PGTZ", "UTC")
-            .args(args)
-            .args(["--engine", engine])
-            .output()
-            .unwrap();
-        assert!(
-            out.status.success(),
-            "report on {engine}: {}",
-            String::from_utf8_lossy(&out.stderr)
-        );
         same(
             &local,
-            &serde_json::from_slice(&out.stdout).unwrap(),
+            &plumb_on(ws, &args, engine),
             &format!("report --engine {engine}"),
         );
     }
@@ -385,22 +379,9 @@ fn postgresql_gives_the_same_statistics_and_readouts_as_duckdb() {
     let local = plumb(ws, &args);
     assert_eq!(local["history"]["bounded_by_exposure_log"], true, "{local}");
     for engine in ["pg", "pgcsv"] {
-        let out = Command::new(env!("CARGO_BIN_EXE_plumb"))
-            .arg("--workspace")
-            .arg(ws)
-            .env("PGTZ", "UTC")
-            .args(args)
-            .args(["--engine", engine])
-            .output()
-            .unwrap();
-        assert!(
-            out.status.success(),
-            "power on {engine}: {}",
-            String::from_utf8_lossy(&out.stderr)
-        );
         same(
             &local,
-            &serde_json::from_slice(&out.stdout).unwrap(),
+            &plumb_on(ws, &args, engine),
             &format!("power --engine {engine}"),
         );
     }
